@@ -120,6 +120,7 @@ class BandPowerEvaluator:
     """
 
     def __init__(self, band_filter: BandFilter, n_fft: int, valid: int):
+        self.filter = band_filter
         g = np.fft.rfft(band_filter.taps, n_fft)
         keep = np.nonzero(np.abs(g) >= BIN_FLOOR * np.abs(g).max())[0]
         k1, k2 = max(int(keep[0]), 1), min(int(keep[-1]), n_fft // 2 - 1)

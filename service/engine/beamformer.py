@@ -224,10 +224,11 @@ class Beamformer:
         """Switch to prepared steering at the current block boundary.
 
         Pending power blocks are first formed with the beams they were
-        recorded under and returned; audio beams crossfade from the old to
-        the new directions over ``crossfade_frames``.
+        recorded under and returned (as from :meth:`flush`); audio beams
+        crossfade from the old to the new directions over
+        ``crossfade_frames``.
         """
-        released = self._release_power()
+        released = self.flush()
         old, old_n = self._steer
         new, new_n = prepared
         same_audio_count = (old.audio is not None and new.audio is not None
@@ -330,8 +331,10 @@ class Beamformer:
         return BlockResult(first, audio, rows[0], rows[1], nan_count, clip_count)
 
     def flush(self) -> BlockResult:
-        """Form and return power blocks still waiting for a full batch."""
-        return self._release_power()
+        """Form and return power blocks still waiting for a full batch (no audio)."""
+        rows = self._release_power()
+        n_audio = len(self.beams.audio_deg)
+        return BlockResult(self._sample, np.zeros((0, n_audio), np.float32), rows[0], rows[1])
 
     def _push(self, chunk: np.ndarray, n_fft: int) -> np.ndarray:
         b = len(chunk)

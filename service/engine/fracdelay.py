@@ -51,7 +51,18 @@ def kernel(delay_samples: np.ndarray, taps: int = TAPS, beta: float = BETA):
     d = np.asarray(delay_samples, dtype=np.float64)
     whole = np.floor(d)
     offsets = np.arange(-taps // 2 + 1, taps // 2 + 1)
-    t = offsets - (d - whole)[..., None]  # distance of each tap from the exact delay
-    arg = np.clip(1.0 - (2.0 * t / taps) ** 2, 0.0, None)
-    values = np.sinc(t) * i0(beta * np.sqrt(arg)) / i0(beta)
+    values = windowed_sinc(offsets - (d - whole)[..., None], taps, beta)
     return (whole + offsets[0]).astype(np.int64), values
+
+
+def windowed_sinc(t: np.ndarray, taps: int = TAPS, beta: float = BETA) -> np.ndarray:
+    """``sinc(t)`` times a Kaiser window of length ``taps`` centred on t = 0.
+
+    Parameters
+    ----------
+    t : array_like
+        Distance in samples from the exact (fractional) position.
+    """
+    t = np.asarray(t, dtype=np.float64)
+    arg = np.clip(1.0 - (2.0 * t / taps) ** 2, 0.0, None)
+    return np.sinc(t) * i0(beta * np.sqrt(arg)) / i0(beta)

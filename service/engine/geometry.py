@@ -30,6 +30,8 @@ class ArrayGeometry:
         advances that channel by it on top of the steering delay.
     grid_shape : tuple of int or None
         (rows, columns) for ``kind == "grid"``.
+    spacing_m : float or None
+        Sensor spacing of a line or grid.
     """
 
     positions_m: np.ndarray
@@ -39,6 +41,7 @@ class ArrayGeometry:
     gain_db: np.ndarray = field(default=None)
     trim_s: np.ndarray = field(default=None)
     grid_shape: tuple | None = None
+    spacing_m: float | None = None
 
     def __post_init__(self):
         pos = np.asarray(self.positions_m, dtype=np.float64).reshape(-1, 3)
@@ -64,7 +67,8 @@ class ArrayGeometry:
     def line(cls, count: int, spacing_m: float, **wiring) -> "ArrayGeometry":
         """Equally spaced line along x, centred on the origin."""
         x = (np.arange(count) - (count - 1) / 2.0) * spacing_m
-        return cls(np.column_stack([x, np.zeros(count), np.zeros(count)]), kind="line", **wiring)
+        return cls(np.column_stack([x, np.zeros(count), np.zeros(count)]), kind="line",
+                   spacing_m=float(spacing_m), **wiring)
 
     @classmethod
     def ring(cls, count: int, radius_m: float, **wiring) -> "ArrayGeometry":
@@ -80,7 +84,7 @@ class ArrayGeometry:
         y = (np.arange(rows) - (rows - 1) / 2.0) * spacing_m
         yy, xx = np.meshgrid(y, x, indexing="ij")
         pos = np.column_stack([xx.ravel(), yy.ravel(), np.zeros(rows * columns)])
-        return cls(pos, kind="grid", grid_shape=(rows, columns), **wiring)
+        return cls(pos, kind="grid", grid_shape=(rows, columns), spacing_m=float(spacing_m), **wiring)
 
     # ---- derived ------------------------------------------------------
     @property

@@ -1,0 +1,138 @@
+"""The ``beamtap`` command: one entry point, one subcommand per job.
+
+Heavy modules are imported inside each subcommand, so ``beamtap --help``
+is quick and commands that do not touch a sound card work without PortAudio.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+from beamtap import __version__
+from beamtap.errors import UsageError
+
+BUILTIN = "builtin:demo"
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with one-line errors and exit status 2."""
+
+    def error(self, message):
+        sys.stderr.write(f"{self.prog}: error: {message} (see '{self.prog} --help')\n")
+        sys.exit(2)
+
+
+def load_config(path):
+    """Load a config file, or the built-in demo scene for ``None``/``builtin:demo``."""
+    from beamtap.service import config as cfg  # noqa: PLC0415
+
+    if path in (None, BUILTIN):
+        from importlib.resources import files  # noqa: PLC0415
+
+        return cfg.loads(files("beamtap.service").joinpath("demo.toml").read_text(), BUILTIN)
+    return cfg.load(path)
+
+
+def _look(text: str):
+    try:
+        parts = [float(p) for p in text.split(",")]
+    except ValueError:
+        parts = []
+    if len(parts) not in (1, 2):
+        raise argparse.ArgumentTypeError(f"got {text!r}, expected AZ or AZ,EL in degrees")
+    return (parts[0], parts[1] if len(parts) == 2 else 0.0)
+
+
+# ---- subcommands ------------------------------------------------------------
+def cmd_check(args):
+    from beamtap.service import offline  # noqa: PLC0415
+
+    print(offline.check_text(load_config(args.config)))
+
+
+def cmd_simulate(args):
+    from beamtap.service import offline  # noqa: PLC0415
+
+    config = load_config(args.config)
+    frames = offline.simulate(config, args.seconds, args.out)
+    print(f"wrote {args.out}: {frames} frames x {config.geometry.n_input_channels} channels "
+          f"at {config.input.samplerate_hz:g} Hz (float32)")
+
+
+def cmd_process(args):
+    from beamtap.service import offline  # noqa: PLC0415
+
+    result = offline.process(load_config(args.config), args.input, args.out)
+    print(f"wrote {args.out}/beams.csv, power.csv, audio.wav, summary.json: "
+          f"{result['frames_processed']} frames, {result['power_rows']} power rows, "
+          f"D = {result['bulk_delay_samples']} samples, "
+          f"{result['nan_samples']} non-finite and {result['clipped_samples']} clipped samples")
+
+
+def cmd_pattern(args):
+    from beamtap.service import offline  # noqa: PLC0415
+
+    config = load_config(args.config)
+    look = args.look or ((90.0, 0.0) if config.geometry.kind == "line" else (0.0, 0.0))
+    table = offline.pattern(config, args.freq, look, args.out)
+    print(f"wrote {args.out}: {len(table)} directions, look {look[0]:g}°/{look[1]:g}° at {args.freq:g} Hz")
+
+
+COMMANDS = {}
+
+
+def _add(sub, name, func, help_text):
+    p = sub.add_parser(name, help=help_text, description=help_text)
+    p.set_defaults(func=func)
+    COMMANDS[name] = p
+    return p
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="beamtap",
+                     description="Real-time delay-and-sum beamformer for hydrophone and microphone arrays.")
+    parser.add_argument("--version", action="version", version=f"beamtap {__version__}")
+    sub = parser.add_subparsers(title="commands", metavar="COMMAND", parser_class=_Parser)
+
+    p = _add(sub, "check", cmd_check, "summarise an array config: aperture, sound speed, delays, beamwidth, aliasing")
+    p.add_argument("config", nargs="?", default=None, help=f"config file (default: the built-in demo, {BUILTIN})")
+
+    p = _add(sub, "simulate", cmd_simulate, "write the config's simulated scene as a multichannel float32 WAV")
+    p.add_argument("config", nargs="?", default=None, help="config file (default: the built-in demo)")
+    p.add_argument("--seconds", type=float, required=True, help="length in seconds")
+    p.add_argument("--out", required=True, help="output WAV file")
+
+    p = _add(sub, "process", cmd_process, "beamform a multichannel WAV offline with the config's beams")
+    p.add_argument("config", help=f"config file (or {BUILTIN})")
+    p.add_argument("input", help="multichannel WAV (16/24/32-bit integer or 32-bit float)")
+    p.add_argument("--out", required=True, help="output folder for beams.csv, power.csv, audio.wav, summary.json")
+
+    p = _add(sub, "pattern", cmd_pattern, "theoretical array response against azimuth for one look direction")
+    p.add_argument("config", nargs="?", default=None, help="config file (default: the built-in demo)")
+    p.add_argument("--freq", type=float, required=True, help="frequency in Hz")
+    p.add_argument("--look", type=_look, default=None, help="look direction AZ[,EL] in degrees "
+                   "(default: broadside for a line, 0° otherwise)")
+    p.add_argument("--out", required=True, help="output .csv (or .png with the plot extra)")
+    return parser
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not hasattr(args, "func"):
+        parser.print_help()
+        return 2
+    try:
+        return args.func(args) or 0
+    except UsageError as exc:
+        sys.stderr.write(f"beamtap {args.func.__name__[4:]}: error: {exc}\n")
+        return 2
+    except KeyboardInterrupt:
+        return 130
+    except BrokenPipeError:
+        return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

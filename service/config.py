@@ -1,0 +1,493 @@
+"""The config file: TOML sections validated once, at load, into dataclasses.
+
+Every mistake raises :class:`beamtap.errors.ConfigError` naming the file,
+the key, the bad value and what is expected; the command line prints it on
+one line and exits with status 2.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from beamtap.errors import ConfigError
+
+from .engine import directions as dirs
+from .engine.beamformer import BeamSet
+from .engine.geometry import ArrayGeometry
+from .engine.medium import air_sound_speed_mps, mackenzie_out_of_range, mackenzie_sound_speed_mps
+from .engine.shading import SHADINGS
+
+SOURCES = ("soundcard", "file", "simulated", "stream", "session")
+SIGNALS = ("noise", "tone", "chirp")
+RECORD_KINDS = ("raw", "audio", "power")
+DEFAULT_PUBLISH = "tcp://127.0.0.1:5560"
+DEFAULT_CONTROL = "tcp://127.0.0.1:5561"
+_REQUIRED = object()
+
+
+# ---------------------------------------------------------------------------
+# Reading helpers: each value is checked where it is read, with its full key.
+# ---------------------------------------------------------------------------
+class _Table:
+    def __init__(self, data: dict, where: str, path: str):
+        self.data, self.where, self.path = data, where, path
+        self.used: set[str] = set()
+
+    def key(self, name: str) -> str:
+        return f"{self.path}.{name}" if self.path else name
+
+    def fail(self, name: str, value, expected: str):
+        shown = "missing" if value is _REQUIRED else f"got {value!r}"
+        raise ConfigError(self.where, self.key(name), f"{shown}, expected {expected}")
+
+    def has(self, name: str) -> bool:
+        return name in self.data
+
+    def raw(self, name: str, default=_REQUIRED, expected: str = "a value"):
+        self.used.add(name)
+        if name not in self.data:
+            if default is _REQUIRED:
+                self.fail(name, _REQUIRED, expected)
+            return default
+        return self.data[name]
+
+    def number(self, name, default=_REQUIRED, low=None, high=None, low_open=False, unit=""):
+        expected = _range_text("a number", low, high, low_open, unit)
+        v = self.raw(name, default, expected)
+        if v is None:
+            return None
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+            self.fail(name, v, expected)
+        if (low is not None and (v < low or (low_open and v == low))) or (high is not None and v > high):
+            self.fail(name, v, expected)
+        return float(v)
+
+    def integer(self, name, default=_REQUIRED, low=None, high=None):
+        expected = _range_text("a whole number", low, high, False, "")
+        v = self.raw(name, default, expected)
+        if v is None:
+            return None
+        if isinstance(v, bool) or not isinstance(v, int) or (low is not None and v < low) or (
+                high is not None and v > high):
+            self.fail(name, v, expected)
+        return int(v)
+
+    def string(self, name, default=_REQUIRED, choices=None):
+        expected = "one of " + ", ".join(repr(c) for c in choices) if choices else "a string"
+        v = self.raw(name, default, expected)
+        if v is None:
+            return None
+        if not isinstance(v, str) or (choices and v not in choices):
+            self.fail(name, v, expected)
+        return v
+
+    def boolean(self, name, default=_REQUIRED):
+        v = self.raw(name, default, "true or false")
+        if not isinstance(v, bool):
+            self.fail(name, v, "true or false")
+        return v
+
+    def numbers(self, name, default=_REQUIRED, length=None, expected=None):
+        expected = expected or (f"a list of {length} numbers" if length else "a list of numbers")
+        v = self.raw(name, default, expected)
+        if v is None:
+            return None
+        if not isinstance(v, list) or any(isinstance(e, bool) or not isinstance(e, (int, float))
+                                          or not math.isfinite(e) for e in v):
+            self.fail(name, v, expected)
+        if length is not None and len(v) != length:
+            self.fail(name, v, expected)
+        return [float(e) for e in v]
+
+    def pairs(self, name, default=_REQUIRED, width=2, expected=None):
+        expected = expected or f"a list of [{', '.join(['number'] * width)}] lists"
+        v = self.raw(name, default, expected)
+        if v is None:
+            return None
+        if not isinstance(v, list) or any(
+                not isinstance(row, list) or len(row) != width
+                or any(isinstance(e, bool) or not isinstance(e, (int, float)) or not math.isfinite(e)
+                       for e in row) for row in v):
+            self.fail(name, v, expected)
+        return [[float(e) for e in row] for row in v]
+
+    def table(self, name, default=_REQUIRED) -> "_Table | None":
+        v = self.raw(name, default, "a table")
+        if v is None:
+            return None
+        if not isinstance(v, dict):
+            self.fail(name, v, "a table")
+        return _Table(v, self.where, self.key(name))
+
+    def tables(self, name) -> list["_Table"]:
+        v = self.raw(name, [], "an array of tables")
+        if not isinstance(v, list) or any(not isinstance(e, dict) for e in v):
+            self.fail(name, v, f"an array of tables ([[{self.key(name)}]])")
+        return [_Table(e, self.where, f"{self.key(name)}[{i}]") for i, e in enumerate(v)]
+
+    def one_of(self, names) -> str:
+        present = [n for n in names if n in self.data]
+        if len(present) != 1:
+            shown = "none" if not present else " and ".join(present)
+            raise ConfigError(self.where, self.path or "(top level)",
+                              f"got {shown}, expected exactly one of {', '.join(names)}")
+        return present[0]
+
+    def done(self):
+        unknown = sorted(set(self.data) - self.used)
+        if unknown:
+            raise ConfigError(self.where, self.key(unknown[0]),
+                              f"unknown key, expected one of {', '.join(sorted(self.used)) or '(none)'}")
+
+
+def _range_text(what, low, high, low_open, unit):
+    unit = f" {unit}" if unit else ""
+    if low is not None and high is not None:
+        return f"{what} from {low:g}{unit} to {high:g}{unit}"
+    if low is not None:
+        return f"{what} {'>' if low_open else '>='} {low:g}{unit}"
+    if high is not None:
+        return f"{what} <= {high:g}{unit}"
+    return what
+
+
+# ---------------------------------------------------------------------------
+# The sections.
+# ---------------------------------------------------------------------------
+@dataclass(frozen=True)
+class MediumConfig:
+    sound_speed_mps: float
+    source: str  # where the value came from, for `check`
+    warnings: tuple = ()
+
+
+@dataclass(frozen=True)
+class SceneSource:
+    """One plane-wave source of a simulated scene."""
+
+    azimuth_deg: float
+    elevation_deg: float = 0.0
+    signal: str = "noise"
+    band_hz: tuple | None = None
+    frequency_hz: float | None = None
+    level_db: float = -20.0
+    sweep_deg_per_s: float = 0.0
+    period_s: float = 1.0  # chirp repetition
+    sweep_to_deg: float | None = None  # bounce between azimuth_deg and this
+
+
+@dataclass(frozen=True)
+class InputConfig:
+    samplerate_hz: float = 48000.0
+    block_frames: int = 1024
+    source: str = "simulated"
+    device: str | int | None = None
+    path: str | None = None
+    realtime: bool = True
+    loop: bool = False
+    endpoint: str | None = None
+    ring_s: float = 2.0
+    scene: tuple = ()
+    scene_noise_db: float = -60.0
+    seed: int = 1
+
+
+@dataclass(frozen=True)
+class PublishConfig:
+    endpoint: str = DEFAULT_PUBLISH
+    raw: bool = False
+    send_queue: int = 64
+
+
+@dataclass(frozen=True)
+class ControlConfig:
+    endpoint: str = DEFAULT_CONTROL
+
+
+@dataclass(frozen=True)
+class RecordConfig:
+    folder: str = "recordings"
+    kinds: tuple = ("raw",)
+    segment_s: float = 60.0
+    sample_format: str = "float32"
+    on_start: bool = False
+    min_free_mb: float = 200.0
+    queue_s: float = 4.0
+
+
+@dataclass(frozen=True)
+class Config:
+    """A validated beamtap config."""
+
+    where: str
+    text: str
+    geometry: ArrayGeometry
+    medium: MediumConfig
+    input: InputConfig
+    beams: BeamSet
+    power_batch_blocks: int = 1
+    publish: PublishConfig = field(default_factory=PublishConfig)
+    control: ControlConfig = field(default_factory=ControlConfig)
+    record: RecordConfig = field(default_factory=RecordConfig)
+
+    @property
+    def sound_speed_mps(self) -> float:
+        return self.medium.sound_speed_mps
+
+    @property
+    def sha256(self) -> str:
+        return hashlib.sha256(self.text.encode()).hexdigest()
+
+
+def load(path) -> Config:
+    """Read and validate a config file.
+
+    Raises
+    ------
+    ConfigError
+        On an unreadable file, bad TOML, or any bad key or value.
+    """
+    where = str(path)
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(where, "(file)", f"cannot be read: {exc.strerror or exc}") from None
+    return loads(text, where)
+
+
+def loads(text: str, where: str = "<config>") -> Config:
+    """Validate config text (see :func:`load`)."""
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(where, "(file)", f"is not valid TOML: {exc}") from None
+    top = _Table(data, where, "")
+    geometry = _array(top.table("array"))
+    medium = _medium(top.table("medium"))
+    inp = _input(top.table("input", {}), geometry)
+    beams, batch = _beams(top.table("beams"), inp.samplerate_hz)
+    publish = _publish(top.table("publish", {}))
+    control = _control(top.table("control", {}))
+    record = _record(top.table("record", {}))
+    top.done()
+    return Config(where, text, geometry, medium, inp, beams, batch, publish, control, record)
+
+
+def _array(t: _Table) -> ArrayGeometry:
+    shape = t.one_of(["line", "ring", "grid", "positions_m"])
+    if shape == "positions_m":
+        pos = t.pairs("positions_m", width=3, expected="a list of [x, y, z] positions in metres")
+        if not pos:
+            t.fail("positions_m", pos, "at least one [x, y, z] position")
+        n = len(pos)
+        make = lambda **w: ArrayGeometry(np.array(pos), kind="positions", **w)  # noqa: E731
+    else:
+        s = t.table(shape)
+        if shape == "line":
+            count, size = s.integer("count", low=1), s.number("spacing_m", low=0, low_open=True, unit="m")
+            n, make = count, lambda **w: ArrayGeometry.line(count, size, **w)  # noqa: E731
+        elif shape == "ring":
+            count, size = s.integer("count", low=1), s.number("radius_m", low=0, low_open=True, unit="m")
+            n, make = count, lambda **w: ArrayGeometry.ring(count, size, **w)  # noqa: E731
+        else:
+            rows, cols = s.integer("rows", low=1), s.integer("columns", low=1)
+            size = s.number("spacing_m", low=0, low_open=True, unit="m")
+            n, make = rows * cols, lambda **w: ArrayGeometry.grid(rows, cols, size, **w)  # noqa: E731
+        s.done()
+    wiring = {}
+    channels = t.raw("channels", None)
+    if channels is not None:
+        if (not isinstance(channels, list) or len(channels) != n
+                or any(isinstance(c, bool) or not isinstance(c, int) or c < 1 for c in channels)):
+            t.fail("channels", channels, f"a list of {n} input channel numbers (1-based)")
+        if len(set(channels)) != n:
+            t.fail("channels", channels, "each input channel used by one sensor only")
+        wiring["channels"] = channels
+    dead = t.raw("dead", None)
+    if dead is not None:
+        if (not isinstance(dead, list) or any(isinstance(d, bool) or not isinstance(d, int)
+                                              or not 1 <= d <= n for d in dead)):
+            t.fail("dead", dead, f"a list of sensor numbers from 1 to {n}")
+        if len(set(dead)) >= n:
+            t.fail("dead", dead, "at least one sensor left alive")
+        mask = np.zeros(n, bool)
+        mask[np.array(dead, int) - 1] = True
+        wiring["dead"] = mask
+    for name, unit in (("gain_db", "dB"), ("trim_s", "s")):
+        if t.has(name):
+            v = t.numbers(name, expected=f"a list of {n} numbers ({unit}), one per sensor")
+            if len(v) != n:
+                t.fail(name, v, f"a list of {n} numbers ({unit}), one per sensor")
+            if name == "trim_s" and any(abs(e) > 1.0 for e in v):
+                t.fail(name, v, "trims within ±1 s")
+            wiring[name] = v
+    t.done()
+    return make(**wiring)
+
+
+def _medium(t: _Table) -> MediumConfig:
+    kind = t.one_of(["sound_speed_mps", "water", "air"])
+    if kind == "sound_speed_mps":
+        c = t.number("sound_speed_mps", low=100.0, high=10000.0, unit="m/s")
+        t.done()
+        return MediumConfig(c, "fixed in config")
+    s = t.table(kind)
+    if kind == "water":
+        temp = s.number("temperature_c", low=-2.0, high=40.0, unit="°C")
+        sal = s.number("salinity_psu", low=0.0, high=45.0, unit="PSU")
+        depth = s.number("depth_m", low=0.0, high=11000.0, unit="m")
+        s.done()
+        t.done()
+        warn = tuple(f"{where}: Mackenzie (1981) used outside its validity range: {w}"
+                     for where, w in ((t.where, w) for w in mackenzie_out_of_range(temp, sal, depth)))
+        return MediumConfig(mackenzie_sound_speed_mps(temp, sal, depth),
+                            f"sea water, Mackenzie (1981): T={temp:g} °C, S={sal:g}, D={depth:g} m", warn)
+    temp = s.number("temperature_c", low=-60.0, high=60.0, unit="°C")
+    s.done()
+    t.done()
+    return MediumConfig(air_sound_speed_mps(temp), f"air at {temp:g} °C: 331.3·sqrt(1 + T/273.15)")
+
+
+def _input(t: _Table, geometry: ArrayGeometry) -> InputConfig:
+    fs = t.number("samplerate_hz", 48000.0, low=1000.0, high=768000.0, unit="Hz")
+    block = t.integer("block_frames", 1024, low=16, high=65536)
+    source = t.string("source", "simulated", SOURCES)
+    device = t.raw("device", None)
+    if device is not None and (isinstance(device, bool) or not isinstance(device, (str, int))):
+        t.fail("device", device, "a device name (string) or index (whole number)")
+    path = t.string("path", None)
+    if source in ("file", "session") and path is None:
+        t.fail("path", _REQUIRED, f"a file or folder path when source = {source!r}")
+    endpoint = t.string("endpoint", None)
+    if source == "stream" and endpoint is None:
+        t.fail("endpoint", _REQUIRED, "a ZeroMQ endpoint such as 'tcp://host:5560' when source = 'stream'")
+    realtime = t.boolean("realtime", True)
+    loop = t.boolean("loop", False)
+    ring_s = t.number("ring_s", 2.0, low=0.05, high=600.0, unit="s")
+    if ring_s * fs < 2 * block:
+        t.fail("ring_s", ring_s, f"at least two blocks ({2 * block / fs:g} s)")
+    noise = t.number("scene_noise_db", -60.0, low=-200.0, high=0.0, unit="dB")
+    seed = t.integer("seed", 1, low=0)
+    scene = tuple(_scene_source(s, fs) for s in t.tables("scene"))
+    t.done()
+    return InputConfig(fs, block, source, device, path, realtime, loop, endpoint, ring_s, scene, noise, seed)
+
+
+def _scene_source(s: _Table, fs: float) -> SceneSource:
+    az = s.number("azimuth_deg", low=-360.0, high=360.0, unit="°")
+    el = s.number("elevation_deg", 0.0, low=-90.0, high=90.0, unit="°")
+    signal = s.string("signal", "noise", SIGNALS)
+    level = s.number("level_db", -20.0, low=-200.0, high=20.0, unit="dB")
+    sweep = s.number("sweep_deg_per_s", 0.0, low=-360.0, high=360.0, unit="°/s")
+    band = freq = None
+    if signal == "tone":
+        freq = s.number("frequency_hz", low=0.0, high=fs / 2, low_open=True, unit="Hz")
+    else:
+        band = tuple(_band(s, "band_hz", fs))
+    period = s.number("period_s", 1.0, low=0.01, high=3600.0, unit="s")
+    sweep_to = s.number("sweep_to_deg", None, low=-360.0, high=360.0, unit="°")
+    if sweep_to is not None and (sweep_to == az or sweep == 0):
+        s.fail("sweep_to_deg", sweep_to, "an azimuth other than azimuth_deg, with sweep_deg_per_s set")
+    s.done()
+    return SceneSource(az, el, signal, band, freq, level, sweep, period, sweep_to)
+
+
+def _band(t: _Table, name: str, fs: float, default=_REQUIRED):
+    expected = f"[low, high] in Hz with 0 < low < high < {fs / 2:g}"
+    v = t.numbers(name, default, length=2, expected=expected)
+    if v is None:
+        return None
+    if not 0.0 < v[0] < v[1] < fs / 2:
+        t.fail(name, v, expected)
+    return v
+
+
+def _beams(t: _Table, fs: float):
+    kind = t.one_of(["fan", "directions_deg", "grid"])
+    if kind == "fan":
+        s = t.table("fan")
+        lo = s.number("from_deg", low=-360.0, high=360.0, unit="°")
+        hi = s.number("to_deg", low=-360.0, high=360.0, unit="°")
+        step = s.number("step_deg", low=0.0, high=360.0, low_open=True, unit="°")
+        el = s.number("elevation_deg", 0.0, low=-90.0, high=90.0, unit="°")
+        if hi < lo:
+            s.fail("to_deg", hi, f"a number >= from_deg ({lo:g})")
+        s.done()
+        power = dirs.fan(lo, hi, step, el)
+    elif kind == "grid":
+        s = t.table("grid")
+        a = [s.number(k, low=-360.0, high=360.0, unit="°") for k in ("az_from_deg", "az_to_deg")]
+        a_step = s.number("az_step_deg", low=0.0, high=360.0, low_open=True, unit="°")
+        e = [s.number(k, low=-90.0, high=90.0, unit="°") for k in ("el_from_deg", "el_to_deg")]
+        e_step = s.number("el_step_deg", low=0.0, high=180.0, low_open=True, unit="°")
+        if a[1] < a[0]:
+            s.fail("az_to_deg", a[1], f"a number >= az_from_deg ({a[0]:g})")
+        if e[1] < e[0]:
+            s.fail("el_to_deg", e[1], f"a number >= el_from_deg ({e[0]:g})")
+        s.done()
+        power = dirs.grid(a[0], a[1], a_step, e[0], e[1], e_step)
+    else:
+        power = np.array(_directions(t, "directions_deg", allow_empty=False))
+    if len(power) > 20000:
+        t.fail(kind, f"{len(power)} beams", "at most 20000 power beams")
+    shading = t.string("shading", "uniform", SHADINGS)
+    sidelobe = t.number("sidelobe_db", 30.0, low=10.0, high=120.0, unit="dB")
+    nbar = t.integer("nbar", 4, low=1, high=20)
+    raw_band = t.raw("band_hz", _REQUIRED, "[low, high] or a list of [low, high] bands in Hz")
+    if isinstance(raw_band, list) and raw_band and all(isinstance(b, list) for b in raw_band):
+        bands = [_band(_Table({"band_hz": b}, t.where, f"{t.key('band_hz')}[{i}]"), "band_hz", fs)
+                 for i, b in enumerate(raw_band)]
+    else:
+        bands = [_band(t, "band_hz", fs)]
+    transition = t.number("transition_hz", None, low=fs / 10000.0, high=fs / 4, unit="Hz")
+    audio = _directions(t, "audio_deg", allow_empty=True, default=[])
+    if len(audio) > 64:
+        t.fail("audio_deg", f"{len(audio)} directions", "at most 64 audio directions")
+    batch = t.integer("power_batch_blocks", 1, low=1, high=16)
+    t.done()
+    return BeamSet(power, np.array(audio).reshape(-1, 2), shading, sidelobe, nbar, tuple(bands),
+                   transition), batch
+
+
+def _directions(t: _Table, name: str, allow_empty: bool, default=_REQUIRED):
+    v = t.pairs(name, default, expected="a list of [azimuth_deg, elevation_deg] pairs")
+    if not v and not allow_empty:
+        t.fail(name, v, "at least one [azimuth_deg, elevation_deg] pair")
+    for az, el in v:
+        if not -360.0 <= az <= 360.0 or not -90.0 <= el <= 90.0:
+            t.fail(name, [az, el], "azimuth from -360 to 360° and elevation from -90 to 90°")
+    return v
+
+
+def _publish(t: _Table) -> PublishConfig:
+    ep = t.string("endpoint", DEFAULT_PUBLISH)
+    raw = t.boolean("raw", False)
+    queue = t.integer("send_queue", 64, low=1, high=100000)
+    t.done()
+    return PublishConfig(ep, raw, queue)
+
+
+def _control(t: _Table) -> ControlConfig:
+    ep = t.string("endpoint", DEFAULT_CONTROL)
+    t.done()
+    return ControlConfig(ep)
+
+
+def _record(t: _Table) -> RecordConfig:
+    folder = t.string("folder", "recordings")
+    kinds = t.raw("what", ["raw"], f"a list drawn from {', '.join(RECORD_KINDS)}")
+    if not isinstance(kinds, list) or not kinds or any(k not in RECORD_KINDS for k in kinds):
+        t.fail("what", kinds, f"a non-empty list drawn from {', '.join(RECORD_KINDS)}")
+    seg = t.number("segment_s", 60.0, low=1.0, high=3600.0, unit="s")
+    fmt = t.string("sample_format", "float32", ("float32", "int24"))
+    on_start = t.boolean("on_start", False)
+    floor = t.number("min_free_mb", 200.0, low=0.0, unit="MB")
+    queue = t.number("queue_s", 4.0, low=0.1, high=600.0, unit="s")
+    t.done()
+    return RecordConfig(folder, tuple(kinds), seg, fmt, on_start, floor, queue)

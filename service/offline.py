@@ -1,0 +1,304 @@
+"""The offline commands: check, simulate, process, pattern.
+
+Each function takes a validated :class:`~beamtap.service.config.Config`
+(and paths), does its job with the same engine the live service runs, and
+returns what it would print, so the command line and tests share it.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import sys
+from pathlib import Path
+
+import numpy as np
+
+from beamtap import __version__
+from beamtap.errors import UsageError
+
+from .config import Config
+from .engine import diagnostics
+from .engine.beamformer import Beamformer
+from .engine.directions import fan, unit_vectors
+from .engine.scene import Scene
+from .engine.shading import shading_weights
+from .wavfile import WavReader, WavWriter
+
+
+def make_beamformer(config: Config, beams=None) -> Beamformer:
+    """The engine as a config describes it."""
+    return Beamformer(config.geometry, config.sound_speed_mps, config.input.samplerate_hz,
+                      config.input.block_frames, beams or config.beams, config.power_batch_blocks)
+
+
+def make_scene(config: Config) -> Scene:
+    """The config's simulated scene."""
+    inp = config.input
+    return Scene(config.geometry, config.sound_speed_mps, inp.samplerate_hz, inp.scene,
+                 inp.scene_noise_db, inp.seed)
+
+
+def beam_weights(config: Config, look_deg) -> np.ndarray:
+    """Shading weights of one look direction over the active sensors."""
+    geo, beams = config.geometry, config.beams
+    u = unit_vectors(look_deg[0], look_deg[1])[None, :]
+    return shading_weights(geo.kind, geo.positions_m, geo.active, u, beams.shading,
+                           beams.sidelobe_db, beams.nbar)[0]
+
+
+def summary(config: Config, bf: Beamformer | None = None) -> dict:
+    """Array summary as a dict (what ``check`` prints)."""
+    geo, inp, beams = config.geometry, config.input, config.beams
+    bf = bf or make_beamformer(config)
+    fs = inp.samplerate_hz
+    d = bf.bulk_delay_samples
+    centre_hz = float(np.mean([np.mean(b) for b in beams.bands_hz]))
+    top_hz = max(b[1] for b in beams.bands_hz)
+    mid = beams.power_deg[len(beams.power_deg) // 2]
+    pos = geo.centred_positions_m
+    weights_all = shading_weights(geo.kind, geo.positions_m, geo.active,
+                                  unit_vectors(beams.power_deg[:, 0], beams.power_deg[:, 1]),
+                                  beams.shading, beams.sidelobe_db, beams.nbar)
+    warnings = list(config.medium.warnings) + diagnostics.aliasing_warnings(
+        geo.kind, pos, geo.spacing_m, beams.power_deg, weights_all, top_hz, config.sound_speed_mps)
+    return {
+        "sensors": int(geo.n_sensors),
+        "active_sensors": int(geo.active.sum()),
+        "array_kind": geo.kind,
+        "input_channels": int(geo.n_input_channels),
+        "aperture_m": geo.aperture_m,
+        "sound_speed_mps": config.sound_speed_mps,
+        "sound_speed_from": config.medium.source,
+        "samplerate_hz": fs,
+        "block_frames": inp.block_frames,
+        "max_steering_delay_ms": 1e3 * geo.max_steering_delay_s(config.sound_speed_mps),
+        "bulk_delay_samples": d,
+        "bulk_delay_ms": 1e3 * d / fs,
+        "latency_budget_ms": 1e3 * (inp.block_frames + d) / fs,
+        "power_extra_latency_ms": 1e3 * (config.power_batch_blocks - 1) * inp.block_frames / fs,
+        "power_beams": int(len(beams.power_deg)),
+        "audio_beams": int(len(beams.audio_deg)),
+        "shading": beams.shading,
+        "bands_hz": [list(b) for b in beams.bands_hz],
+        "band_effective_bandwidth_hz": [ev_bw for ev_bw in _effective_bandwidths(bf)],
+        "beamwidth_at_hz": centre_hz,
+        "beamwidth_look_deg": [float(mid[0]), float(mid[1])],
+        "beamwidth_deg": diagnostics.beamwidth_deg(pos, beam_weights(config, mid), mid, centre_hz,
+                                                   config.sound_speed_mps),
+        "fft_size": bf.fft_size,
+        "steering_mb": bf.steering_bytes / 2**20,
+        "warnings": warnings,
+    }
+
+
+def _effective_bandwidths(bf: Beamformer):
+    return [float(bf.samplerate_hz / 2.0 * np.sum(ev.filter.taps**2)) for ev in bf.band_filters]
+
+
+def check_text(config: Config) -> str:
+    s = summary(config)
+    line = config.geometry.kind == "line"
+    lines = [
+        f"config        {config.where}",
+        f"array         {s['array_kind']}, {s['active_sensors']} of {s['sensors']} sensors active, "
+        f"{s['input_channels']} input channels, aperture {s['aperture_m']:.3f} m",
+        f"sound speed   {s['sound_speed_mps']:.2f} m/s ({s['sound_speed_from']})",
+        f"sampling      {s['samplerate_hz']:g} Hz, blocks of {s['block_frames']} frames "
+        f"({1e3 * s['block_frames'] / s['samplerate_hz']:.2f} ms)",
+        f"steering      max delay {s['max_steering_delay_ms']:.3f} ms; bulk delay D = "
+        f"{s['bulk_delay_samples']} samples ({s['bulk_delay_ms']:.3f} ms)",
+        f"latency       block + D = {s['latency_budget_ms']:.2f} ms"
+        + (f" (power stream +{s['power_extra_latency_ms']:.1f} ms for batching)"
+           if s['power_extra_latency_ms'] else ""),
+        f"beams         {s['power_beams']} power, {s['audio_beams']} audio, shading {s['shading']}",
+        "bands         " + ", ".join(f"{a:g}-{b:g} Hz (effective {bw:.0f} Hz)"
+                                     for (a, b), bw in zip(s['bands_hz'], s['band_effective_bandwidth_hz'])),
+        f"beamwidth     {s['beamwidth_deg']:.2f}° (-3 dB, azimuth) at {s['beamwidth_at_hz']:g} Hz, "
+        f"look {s['beamwidth_look_deg'][0]:g}°/{s['beamwidth_look_deg'][1]:g}°",
+        f"engine        FFT frames of {s['fft_size']}, steering data {s['steering_mb']:.1f} MB",
+    ]
+    if line:
+        lines.append("note          a line array cannot tell a bearing from its mirror image about its axis")
+    lines += [f"warning       {w}" for w in s["warnings"]]
+    return "\n".join(lines)
+
+
+def simulate(config: Config, seconds: float, out_path) -> int:
+    """Write the config's scene as a float32 multichannel WAV; returns frames written."""
+    if not seconds > 0:
+        raise UsageError(f"--seconds: got {seconds!r}, expected a positive number of seconds")
+    scene = make_scene(config)
+    fs = config.input.samplerate_hz
+    total = int(round(seconds * fs))
+    block = config.input.block_frames
+    with WavWriter(out_path, fs, config.geometry.n_input_channels) as w:
+        done = 0
+        while done < total:
+            n = min(block, total - done)
+            w.write(scene.render(n))
+            done += n
+            _progress(done, total, fs)
+    return total
+
+
+def _progress(done: int, total: int, fs: float):
+    if total / fs > 5.0 and sys.stderr.isatty():
+        width = 40
+        filled = int(width * done / total)
+        sys.stderr.write(f"\r[{'#' * filled}{'.' * (width - filled)}] {done / fs:7.1f} / {total / fs:.1f} s")
+        if done >= total:
+            sys.stderr.write("\n")
+        sys.stderr.flush()
+
+
+def process(config: Config, input_path, out_dir) -> dict:
+    """Beamform a WAV file (see the ``process`` command); returns the summary written."""
+    out = Path(out_dir)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise UsageError(f"--out {out}: cannot create folder: {exc.strerror}") from None
+    with WavReader(input_path) as reader:
+        fs = config.input.samplerate_hz
+        need = config.geometry.n_input_channels
+        if reader.samplerate_hz != int(round(fs)):
+            raise UsageError(f"{input_path}: sample rate {reader.samplerate_hz} Hz does not match "
+                             f"[input] samplerate_hz = {fs:g} in {config.where}")
+        if reader.channels < need:
+            raise UsageError(f"{input_path}: {reader.channels} channels, but the array in {config.where} "
+                             f"needs {need} (highest channel in its channel map)")
+        return _process_stream(config, reader, out)
+
+
+def _process_stream(config: Config, reader: WavReader, out: Path) -> dict:
+    bf = make_beamformer(config)
+    fs = config.input.samplerate_hz
+    d = bf.bulk_delay_samples
+    block = config.input.block_frames
+    beams = config.beams
+    lag = d + int(bf.band_filters[0].filter.group_delay_samples)
+    with open(out / "beams.csv", "w", newline="") as f:
+        w = csv.writer(f)
+        w.writerow(["beam", "azimuth_deg", "elevation_deg"])
+        for i, (az, el) in enumerate(beams.power_deg):
+            w.writerow([i, f"{az:g}", f"{el:g}"])
+    counts = {"nan": 0, "clipped": 0, "frames": 0, "power_rows": 0}
+    n_audio = len(beams.audio_deg)
+    multi_band = len(beams.bands_hz) > 1
+    header = ["time_s"] + [f"{i}" if not multi_band else f"{i}@band{b}"
+                           for b in range(len(beams.bands_hz)) for i in range(len(beams.power_deg))]
+    audio_w = WavWriter(out / "audio.wav", fs, max(n_audio, 1)) if n_audio else None
+    skip = d  # the first D output frames precede the input's time zero
+    try:
+        with open(out / "power.csv", "w", newline="") as pf:
+            pw = csv.writer(pf)
+            pw.writerow(header)
+
+            def emit(result):
+                nonlocal skip
+                if audio_w is not None and len(result.audio):
+                    a = result.audio[skip:]
+                    skip = max(0, skip - len(result.audio))
+                    audio_w.write(a)
+                for first, row in zip(result.power_first_sample, result.power_db):
+                    if first + block > counts["frames"]:
+                        continue  # a block completed by the zero tail, not by input
+                    pw.writerow([f"{(first - lag) / fs:.6f}"] + [f"{v:.3f}" for v in row.ravel()])
+                    counts["power_rows"] += 1
+                counts["nan"] += result.nan_count
+                if reader.sample_format == "float32":
+                    counts["clipped"] += result.clip_count
+
+            while True:
+                x, clipped = reader.read(block)
+                if len(x) == 0:
+                    break
+                counts["clipped"] += clipped  # integer input: full-scale codes
+                counts["frames"] += len(x)
+                emit(bf.process(x))
+                _progress(counts["frames"], reader.frames, fs)
+            # Push the last D frames of beam audio out so audio.wav has the input's length.
+            emit(bf.process(np.zeros((d, reader.channels), np.float32)))
+            emit(bf.flush())
+    finally:
+        if audio_w is not None:
+            audio_w.close()
+    result = {
+        "software": f"beamtap {__version__}",
+        "input": reader.path,
+        "input_format": reader.sample_format,
+        "config_file": config.where,
+        "config_sha256": config.sha256,
+        "config": config.text,
+        "samplerate_hz": fs,
+        "bulk_delay_samples": d,
+        "band_filter_delay_samples": lag - d,
+        "power_time_axis": "time_s is the input time of the first sample each power row covers "
+                           "(bulk delay and band filter delay removed); rows cover whole blocks only",
+        "frames_processed": counts["frames"],
+        "power_rows": counts["power_rows"],
+        "nan_samples": counts["nan"],
+        "clipped_samples": counts["clipped"],
+        "summary": summary(config, bf),
+    }
+    (out / "summary.json").write_text(json.dumps(result, indent=2, default=_json_default))
+    return result
+
+
+def _json_default(o):
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    return str(o)
+
+
+def pattern(config: Config, frequency_hz: float, look_deg, out_path, step_deg: float = 0.1) -> np.ndarray:
+    """Theoretical response against azimuth at the look elevation; CSV (and PNG if asked).
+
+    Returns
+    -------
+    ndarray, shape (n, 3): azimuth_deg, elevation_deg, response_db.
+    """
+    if not frequency_hz > 0:
+        raise UsageError(f"--freq: got {frequency_hz!r}, expected a positive frequency in Hz")
+    geo = config.geometry
+    directions = fan(-180.0, 180.0, step_deg, look_deg[1])
+    units = unit_vectors(directions[:, 0], directions[:, 1])
+    look = unit_vectors(look_deg[0], look_deg[1])
+    level = diagnostics.response_db(geo.centred_positions_m, beam_weights(config, look_deg), look, units,
+                                    frequency_hz, config.sound_speed_mps)
+    table = np.column_stack([directions, level])
+    out = Path(out_path)
+    if out.suffix.lower() == ".png":
+        _pattern_png(table, config, frequency_hz, look_deg, out)
+    else:
+        with open(out, "w", newline="") as f:
+            w = csv.writer(f)
+            w.writerow(["azimuth_deg", "elevation_deg", "response_db"])
+            for az, el, r in table:
+                w.writerow([f"{az:.2f}", f"{el:g}", f"{r:.3f}"])
+    return table
+
+
+def _pattern_png(table, config, frequency_hz, look_deg, out):
+    try:
+        import matplotlib  # noqa: PLC0415 - optional extra
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt  # noqa: PLC0415
+    except ImportError:
+        raise UsageError("a PNG pattern needs the plotting extra: pip install 'beamtap[plot]' "
+                         "(or give --out a .csv name)") from None
+    fig, ax = plt.subplots(figsize=(8, 4))
+    ax.plot(table[:, 0], np.maximum(table[:, 2], -80))
+    ax.set_xlabel("azimuth (deg)")
+    ax.set_ylabel("response (dB)")
+    ax.set_ylim(-80, 3)
+    ax.grid(True, alpha=0.3)
+    ax.set_title(f"{config.geometry.kind} array, {config.geometry.active.sum()} sensors, "
+                 f"{frequency_hz:g} Hz, look {look_deg[0]:g}°/{look_deg[1]:g}°, {config.beams.shading}")
+    fig.tight_layout()
+    fig.savefig(out, dpi=100)
+    plt.close(fig)
+

@@ -1,0 +1,210 @@
+"""Multichannel WAV files, read and written block by block.
+
+Reads PCM 16/24/32-bit integer and 32-bit IEEE float (plain or
+WAVE_FORMAT_EXTENSIBLE); writes 32-bit float or 24-bit integer. The writer
+keeps the RIFF and data sizes in the header true after every flush, so a
+file cut off by a crash or power loss is still a valid WAV of everything
+flushed before (any WAV reader, scipy.io.wavfile included, reads it).
+
+References
+----------
+Microsoft/IBM, "Multimedia Programming Interface and Data Specifications
+1.0" (1991), RIFF WAVE format; Microsoft, "WAVEFORMATEXTENSIBLE" (2017).
+"""
+
+from __future__ import annotations
+
+import os
+import struct
+
+import numpy as np
+
+from beamtap.errors import UsageError
+
+PCM, IEEE_FLOAT, EXTENSIBLE = 1, 3, 0xFFFE
+
+
+class WavError(UsageError):
+    """A WAV file that cannot be read: the message says which and why."""
+
+
+class WavReader:
+    """Read a WAV file in blocks of float32 (frames, channels).
+
+    Parameters
+    ----------
+    path : str or path-like
+
+    Attributes
+    ----------
+    samplerate_hz : int
+    channels : int
+    frames : int
+        Total frames in the data chunk.
+    sample_format : str
+        ``"int16"``, ``"int24"``, ``"int32"`` or ``"float32"``.
+
+    Notes
+    -----
+    Integer samples map to ±1 full scale; :meth:`read` also counts integer
+    samples at the most negative or most positive code (clipped).
+    """
+
+    def __init__(self, path):
+        self.path = str(path)
+        try:
+            self._f = open(self.path, "rb")
+        except OSError as exc:
+            raise WavError(f"{self.path}: cannot open: {exc.strerror}") from None
+        try:
+            self._parse()
+        except Exception:
+            self._f.close()
+            raise
+
+    def _fail(self, what):
+        raise WavError(f"{self.path}: not a readable WAV file: {what}")
+
+    def _parse(self):
+        head = self._f.read(12)
+        if len(head) < 12 or head[:4] != b"RIFF" or head[8:12] != b"WAVE":
+            self._fail("no RIFF/WAVE header")
+        fmt = None
+        size_on_disk = os.fstat(self._f.fileno()).st_size
+        while True:
+            ch = self._f.read(8)
+            if len(ch) < 8:
+                self._fail("no data chunk")
+            cid, size = ch[:4], struct.unpack("<I", ch[4:])[0]
+            if cid == b"fmt ":
+                body = self._f.read(size + (size & 1))
+                if len(body) < 16:
+                    self._fail("fmt chunk too short")
+                tag, nch, rate, _, align, bits = struct.unpack("<HHIIHH", body[:16])
+                if tag == EXTENSIBLE and len(body) >= 40:
+                    tag = struct.unpack("<H", body[24:26])[0]
+                fmt = (tag, nch, rate, align, bits)
+            elif cid == b"data":
+                if fmt is None:
+                    self._fail("data chunk before fmt chunk")
+                self._data_start = self._f.tell()
+                available = size_on_disk - self._data_start
+                # A header not updated before a crash: read what is there.
+                data_size = size if 0 < size <= available else available
+                break
+            else:
+                self._f.seek(size + (size & 1), 1)
+        tag, nch, rate, align, bits = fmt
+        kinds = {(PCM, 16): "int16", (PCM, 24): "int24", (PCM, 32): "int32", (IEEE_FLOAT, 32): "float32"}
+        if (tag, bits) not in kinds:
+            self._fail(f"format tag {tag} with {bits} bits (expected 16/24/32-bit PCM or 32-bit float)")
+        if nch < 1 or align != nch * bits // 8:
+            self._fail(f"{nch} channels with block align {align}")
+        self.sample_format = kinds[(tag, bits)]
+        self.channels, self.samplerate_hz, self._width = nch, rate, bits // 8
+        self.frames = data_size // align
+        self._next = 0
+
+    def read(self, frames: int):
+        """Up to ``frames`` frames: ``(block float32 (n, channels), clipped_count)``."""
+        n = max(0, min(frames, self.frames - self._next))
+        raw = self._f.read(n * self.channels * self._width)
+        n = len(raw) // (self.channels * self._width)
+        self._next += n
+        raw = raw[: n * self.channels * self._width]
+        if self.sample_format == "float32":
+            x = np.frombuffer(raw, "<f4").reshape(n, self.channels).astype(np.float32)
+            return x, 0
+        if self.sample_format == "int24":
+            b = np.frombuffer(raw, np.uint8).reshape(-1, 3)
+            v = (b[:, 0].astype(np.int32) | (b[:, 1].astype(np.int32) << 8) | (b[:, 2].astype(np.int32) << 16))
+            v = np.where(v >= 1 << 23, v - (1 << 24), v)
+            full = float(1 << 23)
+        else:
+            v = np.frombuffer(raw, "<i2" if self._width == 2 else "<i4").astype(np.int64)
+            full = float(1 << (8 * self._width - 1))
+        clipped = int(np.count_nonzero((v >= full - 1) | (v <= -full)))
+        return (v / full).astype(np.float32).reshape(n, self.channels), clipped
+
+    def close(self):
+        self._f.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+
+class WavWriter:
+    """Write float32 (or 24-bit integer) WAV, header kept valid as it grows.
+
+    Parameters
+    ----------
+    path : str or path-like
+    samplerate_hz : int
+    channels : int
+    sample_format : {"float32", "int24"}
+    """
+
+    def __init__(self, path, samplerate_hz: int, channels: int, sample_format: str = "float32"):
+        if sample_format not in ("float32", "int24"):
+            raise ValueError(f"sample_format={sample_format!r}: expected 'float32' or 'int24'")
+        self.path, self.channels, self.sample_format = str(path), int(channels), sample_format
+        self.samplerate_hz = int(round(samplerate_hz))
+        self._width = 4 if sample_format == "float32" else 3
+        self.frames = 0
+        self._f = open(self.path, "wb")
+        tag = IEEE_FLOAT if sample_format == "float32" else PCM
+        align = self.channels * self._width
+        # fmt chunk of 18 bytes (cbSize = 0) for float, 16 for PCM; a fact chunk is not needed by readers.
+        self._f.write(b"RIFF" + struct.pack("<I", 0) + b"WAVE")
+        self._f.write(b"fmt " + struct.pack("<IHHIIHH", 16, tag, self.channels, self.samplerate_hz,
+                                            self.samplerate_hz * align, align, 8 * self._width))
+        self._f.write(b"data" + struct.pack("<I", 0))
+        self._data_start = self._f.tell()
+        self._update_header()
+
+    @property
+    def bytes_written(self) -> int:
+        return self._data_start + self.frames * self.channels * self._width
+
+    def write(self, block: np.ndarray) -> None:
+        """Append frames, shape (n, channels), float in ±1."""
+        block = np.asarray(block, dtype=np.float32).reshape(-1, self.channels)
+        if self.sample_format == "float32":
+            data = block.astype("<f4").tobytes()
+        else:
+            v = np.clip(np.round(block.astype(np.float64) * (1 << 23)), -(1 << 23), (1 << 23) - 1).astype("<i4")
+            data = v.view(np.uint8).reshape(-1, 4)[:, :3].tobytes()
+        self._f.write(data)
+        self.frames += len(block)
+
+    def _update_header(self):
+        end = self._f.tell()
+        data_bytes = self.frames * self.channels * self._width
+        self._f.seek(4)
+        self._f.write(struct.pack("<I", self._data_start - 8 + data_bytes))
+        self._f.seek(self._data_start - 4)
+        self._f.write(struct.pack("<I", data_bytes))
+        self._f.seek(end)
+
+    def flush(self, sync: bool = False) -> None:
+        """Make the header match the data written so far and push to the OS (and disk if ``sync``)."""
+        self._update_header()
+        self._f.flush()
+        if sync:
+            os.fsync(self._f.fileno())
+
+    def close(self) -> None:
+        if not self._f.closed:
+            try:
+                self.flush(sync=True)
+            finally:
+                self._f.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
