@@ -27,6 +27,8 @@ side lobes", IRE Trans. Antennas Propag. 3(1), 16–28 (1955).
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 from scipy.signal import windows
 
@@ -62,7 +64,10 @@ def taper(name: str, count: int, sidelobe_db: float = 30.0, nbar: int = 4) -> np
     if name == "hamming":
         return windows.hamming(count, sym=True)
     if name == "chebyshev":
-        return windows.chebwin(count, at=sidelobe_db, sym=True)
+        with warnings.catch_warnings():
+            # scipy warns about spectral-analysis use below 45 dB; for an array taper it is fine.
+            warnings.simplefilter("ignore", UserWarning)
+            return windows.chebwin(count, at=sidelobe_db, sym=True)
     if name == "taylor":
         return windows.taylor(count, nbar=nbar, sll=sidelobe_db, norm=True, sym=True)
     raise ValueError(f"shading={name!r}: expected one of {', '.join(SHADINGS)}")

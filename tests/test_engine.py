@@ -1,0 +1,285 @@
+"""The beamformer engine through its public interface, against published values."""
+
+import numpy as np
+import pytest
+from scipy.signal import lfilter
+
+from beamtap.service.engine import ArrayGeometry, Beamformer
+from beamtap.service.engine.bandpower import design_band_filter
+from beamtap.service.engine.beamformer import BeamSet
+from beamtap.service.engine.directions import fan, grid
+
+from conftest import broadband_plane_wave, tone_plane_wave
+
+FS, C = 48000.0, 1500.0
+
+
+def fan_power_db(geo, x, directions, shading="uniform", band=(1000.0, 2000.0), sidelobe_db=30.0, block=1024):
+    """Mean band power over the signal for each beam (dB), from the engine."""
+    bf = Beamformer(geo, C, FS, block, BeamSet(directions, shading=shading, sidelobe_db=sidelobe_db,
+                                               bands_hz=[band]))
+    r = bf.process(x)
+    settle = int(np.ceil((2 * bf.bulk_delay_samples + len(bf.band_filters[0].filter.taps)) / block)) + 1
+    p = 10 ** (r.power_db[settle:, 0, :] / 10)
+    return 10 * np.log10(p.mean(axis=0))
+
+
+def u_space_directions(step=0.0005):
+    """Directions equally spaced in u = cos(angle from axis), for a line along x."""
+    u = np.arange(-1.0, 1.0 + step / 2, step)
+    return np.column_stack([np.degrees(np.arccos(np.clip(u, -1, 1))), np.zeros_like(u)]), u
+
+
+def sidelobes_db(level_db, u, u0=0.0):
+    """Main-lobe-relative level and the sidelobe region beyond the first null on either side."""
+    rel = level_db - level_db.max()
+    c = int(np.argmin(np.abs(u - u0)))
+    right = c
+    while right + 1 < len(u) and rel[right + 1] < rel[right]:
+        right += 1
+    left = c
+    while left > 0 and rel[left - 1] < rel[left]:
+        left -= 1
+    return rel, left, right
+
+
+@pytest.fixture(scope="module")
+def broadside_tone():
+    # 16 sensors at half a wavelength: d = λ/2 at 1500 Hz for c = 1500 m/s.
+    geo = ArrayGeometry.line(16, 0.5)
+    x = tone_plane_wave(geo.centred_positions_m, C, FS, 90.0, 1500.0, 24 * 1024)
+    return geo, x
+
+
+def test_uniform_first_sidelobe_and_null(broadside_tone):
+    """Van Trees (2002) §2.4: uniform line, first sidelobe -13.26 dB (large-N limit;
+    within 0.3 dB for N = 16) and first null at u - u0 = λ/(N d) = 0.125."""
+    geo, x = broadside_tone
+    dirs, u = u_space_directions()
+    level = fan_power_db(geo, x, dirs)
+    rel, left, right = sidelobes_db(level, u)
+    assert u[right] == pytest.approx(0.125, abs=0.001)
+    assert u[left] == pytest.approx(-0.125, abs=0.001)
+    first_sidelobe = rel[right:right + 400].max()
+    assert first_sidelobe == pytest.approx(-13.26, abs=0.3)
+
+
+def test_hann_highest_sidelobe(broadside_tone):
+    """Harris (1978), Proc. IEEE 66(1), Table 1: Hann highest sidelobe -31.5 dB (±1 dB)."""
+    geo, x = broadside_tone
+    dirs, u = u_space_directions()
+    rel, left, right = sidelobes_db(fan_power_db(geo, x, dirs, "hann"), u)
+    highest = max(rel[right:].max(), rel[:left + 1].max())
+    assert highest == pytest.approx(-31.5, abs=1.0)
+
+
+def test_chebyshev_sidelobes_at_design_level(broadside_tone):
+    """Dolph (1946): a Chebyshev taper for 30 dB keeps every sidelobe at or below -30 dB (+0.5 dB)."""
+    geo, x = broadside_tone
+    dirs, u = u_space_directions()
+    rel, left, right = sidelobes_db(fan_power_db(geo, x, dirs, "chebyshev", sidelobe_db=30.0), u)
+    assert max(rel[right:].max(), rel[:left + 1].max()) <= -30.0 + 0.5
+    # and the design is equiripple: the highest sidelobe is at the design level, not far below it
+    assert max(rel[right:].max(), rel[:left + 1].max()) >= -30.0 - 0.5
+
+
+def test_taylor_sidelobes_near_design_level(broadside_tone):
+    """Taylor (1955): n̄ = 4, 30 dB design keeps the highest sidelobe near -30 dB
+    (±1 dB, the discrete 16-element sampling of the line-source taper; common practice)."""
+    geo, x = broadside_tone
+    dirs, u = u_space_directions()
+    rel, left, right = sidelobes_db(fan_power_db(geo, x, dirs, "taylor", sidelobe_db=30.0), u)
+    assert max(rel[right:].max(), rel[:left + 1].max()) == pytest.approx(-30.0, abs=1.0)
+
+
+@pytest.mark.parametrize("shading", ["uniform", "hamming"])
+def test_array_gain_against_independent_noise(rng, shading):
+    """Van Trees (2002) §2.6: white-noise array gain 10·log10((Σw)²/Σw²); 12.04 dB for
+    16 uniform sensors. Within 0.3 dB."""
+    geo = ArrayGeometry.line(16, 0.5)
+    n = 10 * int(FS)
+    x = (0.05 * rng.standard_normal((n, 16))).astype(np.float32)
+    bf = Beamformer(geo, C, FS, 4096, BeamSet([[90.0, 0.0], [60.0, 0.0]], shading=shading,
+                                              bands_hz=[(500.0, 5000.0)]))
+    r = bf.process(x)
+    beam_power = np.mean(10 ** (r.power_db[4:, 0, :] / 10), axis=0)
+    g = bf.band_filters[0].filter.taps
+    sensor_power = np.mean([np.mean(lfilter(g, 1, x[:, m].astype(np.float64))[len(g):] ** 2) for m in range(16)])
+    from beamtap.service.engine.shading import taper
+    w = taper(shading, 16)
+    expected = 10 * np.log10(w.sum() ** 2 / np.sum(w ** 2))
+    if shading == "uniform":
+        assert expected == pytest.approx(12.04, abs=0.005)
+    for b in range(2):
+        assert 10 * np.log10(sensor_power / beam_power[b]) == pytest.approx(expected, abs=0.3)
+
+
+def test_band_power_matches_its_definition(rng):
+    """Band power = mean over each block of (g * y)², g the band FIR and y the beam audio:
+    checked against scipy.signal.lfilter on the engine's own audio beam."""
+    geo = ArrayGeometry.line(12, 0.4)
+    x, _ = broadband_plane_wave(geo.centred_positions_m, C, FS, 71.0, 0.1 * rng.standard_normal(1 << 16))
+    bands = [(400.0, 1200.0), (2000.0, 6000.0)]
+    bf = Beamformer(geo, C, FS, 1024, BeamSet([[71.0, 0.0]], [[71.0, 0.0]], bands_hz=bands))
+    r = bf.process(x)
+    y = r.audio[:, 0].astype(np.float64)
+    for i, band in enumerate(bands):
+        g = design_band_filter(band, FS).taps
+        z = lfilter(g, 1, y)
+        want = np.array([np.mean(z[k * 1024:(k + 1) * 1024] ** 2) for k in range(len(r.power_db))])
+        assert np.allclose(r.power_db[:, i, 0], 10 * np.log10(want), atol=0.01)
+    assert np.array_equal(r.power_first_sample, 1024 * np.arange(len(r.power_db)))
+
+
+def test_full_scale_sine_reads_minus_3_db():
+    """dB re full scale: a sine of amplitude 1 has mean square 1/2, -3.01 dB (common practice)."""
+    geo = ArrayGeometry.line(4, 0.1)
+    x = tone_plane_wave(geo.centred_positions_m, C, FS, 90.0, 1000.0, 32 * 1024, amplitude=1.0)
+    x *= 0.999  # stay below the clip count threshold; -0.0087 dB
+    bf = Beamformer(geo, C, FS, 1024, BeamSet([[90.0, 0.0]], bands_hz=[(500.0, 1500.0)]))
+    r = bf.process(x)
+    assert np.mean(r.power_db[8:, 0, 0]) == pytest.approx(-3.0103 + 20 * np.log10(0.999), abs=0.02)
+
+
+def test_block_invariance(rng):
+    geo = ArrayGeometry.line(8, 0.5, dead=np.array([0, 0, 1, 0, 0, 0, 0, 0], bool))
+    every_sensor = geo.positions_m - geo.phase_centre_m  # the dead one still delivers a channel
+    x, _ = broadband_plane_wave(every_sensor, C, FS, 50.0, 0.2 * rng.standard_normal(12000))
+    beams = BeamSet(fan(0, 180, 5), [[50.0, 0.0], [120.0, 0.0]], shading="hann", bands_hz=[(300, 3000)])
+    whole = Beamformer(geo, C, FS, 1024, beams).process(x)
+    for size in (1, 97, 1024, 4096):
+        bf = Beamformer(geo, C, FS, 1024, beams)
+        parts = [bf.process(x[i:i + size]) for i in range(0, len(x), size)]
+        audio = np.concatenate([p.audio for p in parts])
+        power = np.concatenate([p.power_db for p in parts])
+        assert audio.shape == whole.audio.shape
+        assert np.max(np.abs(audio - whole.audio)) < 1e-6
+        assert np.array_equal(power, whole.power_db)  # the same frames are transformed: bit-identical
+
+
+def test_power_batching_changes_latency_not_values(rng):
+    geo = ArrayGeometry.line(8, 0.5)
+    x = (0.1 * rng.standard_normal((20 * 1024, 8))).astype(np.float32)
+    beams = BeamSet(fan(0, 180, 10), bands_hz=[(300, 3000)])
+    one = Beamformer(geo, C, FS, 1024, beams).process(x)
+    bf = Beamformer(geo, C, FS, 1024, beams, power_batch_blocks=3)
+    parts = [bf.process(x[i:i + 1024]) for i in range(0, len(x), 1024)] + [bf.flush()]
+    assert [len(p.power_db) for p in parts[:6]] == [0, 0, 3, 0, 0, 3]
+    batched = np.concatenate([p.power_db for p in parts])
+    assert np.allclose(batched, one.power_db, atol=1e-4)
+
+
+def test_bulk_delay_is_exact_for_an_impulse():
+    """An impulse plane wave from broadside (all sensors at once) comes out at exactly D samples."""
+    geo = ArrayGeometry.line(16, 0.5)
+    x = np.zeros((4096, 16), np.float32)
+    x[1000] = 1.0
+    bf = Beamformer(geo, C, FS, 1024, BeamSet([[90.0, 0.0]], [[90.0, 0.0]], bands_hz=[(500, 1400)]))
+    y = bf.process(x).audio[:, 0]
+    d = bf.bulk_delay_samples
+    assert int(np.argmax(y)) == 1000 + d
+    assert y[1000 + d] == pytest.approx(1.0, abs=1e-5)
+    y[1000 + d] = 0
+    assert np.max(np.abs(y)) < 1e-5
+
+
+def test_bulk_delay_sized_from_aperture():
+    """D = ceil(max|p|/c·fs) + taps/2 (DEVELOPERS.md, delays and causality)."""
+    geo = ArrayGeometry.line(64, 0.5)
+    bf = Beamformer(geo, C, FS, 1024, BeamSet([[90.0, 0.0]], bands_hz=[(500, 1400)]))
+    # max |p| = 15.75 m: 15.75 / 1500 * 48000 = 504 samples exactly; kernel 32 taps
+    assert bf.bulk_delay_samples == 504 + 16
+
+
+def test_unity_look_gain_with_dead_sensors_and_calibration():
+    dead = np.zeros(16, bool)
+    dead[[2, 7, 11]] = True
+    gain_db = np.linspace(-3, 3, 16)
+    geo = ArrayGeometry.line(16, 0.5, dead=dead, gain_db=gain_db)
+    look = 67.3
+    clean = tone_plane_wave(geo.centred_positions_m, C, FS, look, 900.0, 16384, amplitude=0.3)
+    # what the sensors deliver: each is off by the inverse of its calibration gain
+    raw = np.zeros((16384, 16), np.float32)
+    raw[:, ~dead] = clean * 10 ** (-gain_db[~dead] / 20)
+    raw[:, dead] = 0.9  # a dead sensor's junk must not matter
+    for shading in ("uniform", "hann", "chebyshev"):
+        bf = Beamformer(geo, C, FS, 1024, BeamSet([[look, 0.0]], [[look, 0.0]], shading=shading,
+                                                  bands_hz=[(500, 1400)]))
+        y = bf.process(raw).audio[4000:, 0]
+        assert np.max(np.abs(y)) == pytest.approx(0.3, rel=1e-3)
+
+
+def test_nan_and_inf_are_zeroed_counted_and_do_not_poison(rng):
+    geo = ArrayGeometry.line(4, 0.5)
+    x = (0.1 * rng.standard_normal((8192, 4))).astype(np.float32)
+    bad = x.copy()
+    bad[100, 1] = np.nan
+    bad[200, 2] = np.inf
+    bad[300, 3] = -np.inf
+    bad[400, 0] = 1.5
+    beams = BeamSet(fan(0, 180, 30), [[90.0, 0.0]], bands_hz=[(300, 3000)])
+    bf = Beamformer(geo, C, FS, 1024, beams)
+    r = bf.process(bad)
+    assert (r.nan_count, r.clip_count) == (3, 1)
+    assert np.all(np.isfinite(r.audio)) and np.all(np.isfinite(r.power_db))
+    # later blocks equal those of a clean run with the same zeros
+    fixed = x.copy()
+    fixed[100, 1] = fixed[200, 2] = fixed[300, 3] = 0.0
+    fixed[400, 0] = 1.5
+    ref = Beamformer(geo, C, FS, 1024, beams).process(fixed)
+    assert np.allclose(r.audio, ref.audio, atol=1e-7)
+
+
+def test_retarget_between_blocks_with_bounded_crossfade(rng):
+    geo = ArrayGeometry.line(16, 0.5)
+    x, _ = broadband_plane_wave(geo.centred_positions_m, C, FS, 40.0, 0.1 * rng.standard_normal(1 << 15))
+    a = BeamSet(fan(0, 180, 2), [[40.0, 0.0]], bands_hz=[(300, 3000)])
+    b = BeamSet(fan(0, 180, 1), [[120.0, 0.0]], bands_hz=[(300, 3000)])
+    bf = Beamformer(geo, C, FS, 1024, a)
+    first = bf.process(x[:8192])
+    bf.retarget(b)
+    second = bf.process(x[8192:])
+    ref_a = Beamformer(geo, C, FS, 1024, a).process(x)
+    ref_b = Beamformer(geo, C, FS, 1024, b).process(x)
+    fade = bf.crossfade_frames
+    assert fade == 480  # 10 ms at 48 kHz
+    assert np.allclose(first.audio, ref_a.audio[:8192], atol=1e-6)
+    assert np.allclose(second.audio[fade:], ref_b.audio[8192 + fade:], atol=1e-6)
+    ramp = ((np.arange(fade) + 0.5) / fade)[:, None]
+    mix = ramp * ref_b.audio[8192:8192 + fade] + (1 - ramp) * ref_a.audio[8192:8192 + fade]
+    assert np.allclose(second.audio[:fade], mix, atol=1e-6)
+    assert second.power_db.shape[2] == 181
+    assert np.allclose(second.power_db, ref_b.power_db[8:], atol=1e-3)
+
+
+def bearing_of_peak(geo, x, directions, band):
+    level = fan_power_db(geo, x, directions, band=band)
+    return directions[int(np.argmax(level))]
+
+
+@pytest.mark.parametrize("az", [37.0, 118.0])
+def test_broadband_bearing_line(rng, az):
+    geo = ArrayGeometry.line(16, 0.5)
+    x, _ = broadband_plane_wave(geo.centred_positions_m, C, FS, az, 0.1 * rng.standard_normal(1 << 15))
+    assert bearing_of_peak(geo, x, fan(0, 180, 1), (300, 1400))[0] == pytest.approx(az, abs=1.0)
+
+
+def test_broadband_bearing_ring(rng):
+    # 12-microphone ring in air: radius 0.2 m, 343 m/s.
+    geo = ArrayGeometry.ring(12, 0.2)
+    c = 343.0
+    x, _ = broadband_plane_wave(geo.centred_positions_m, c, FS, 247.0, 0.1 * rng.standard_normal(1 << 15))
+    bf = Beamformer(geo, c, FS, 1024, BeamSet(fan(0, 359, 1), bands_hz=[(500, 3000)]))
+    r = bf.process(x)
+    assert fan(0, 359, 1)[np.argmax(r.power_db[6:, 0].mean(axis=0)), 0] == pytest.approx(247.0, abs=2.0)
+
+
+def test_broadband_bearing_grid_in_azimuth_and_elevation(rng):
+    geo = ArrayGeometry.grid(6, 6, 0.3)
+    directions = grid(0, 358, 2, 10, 90, 2)
+    x, _ = broadband_plane_wave(geo.centred_positions_m, C, FS, 136.0, 0.1 * rng.standard_normal(1 << 15),
+                                el_deg=38.0)
+    bf = Beamformer(geo, C, FS, 1024, BeamSet(directions, bands_hz=[(500, 2400)]))
+    r = bf.process(x)
+    az, el = directions[np.argmax(r.power_db[6:, 0].mean(axis=0))]
+    assert (az, el) == (pytest.approx(136.0, abs=2.0), pytest.approx(38.0, abs=2.0))
