@@ -149,6 +149,8 @@ class _Table:
 def _range_text(what, low, high, low_open, unit):
     unit = f" {unit}" if unit else ""
     if low is not None and high is not None:
+        if low_open:
+            return f"{what} > {low:g}{unit} and <= {high:g}{unit}"
         return f"{what} from {low:g}{unit} to {high:g}{unit}"
     if low is not None:
         return f"{what} {'>' if low_open else '>='} {low:g}{unit}"
