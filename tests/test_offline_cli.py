@@ -1,0 +1,157 @@
+"""The offline commands run the way a user runs them: as a subprocess."""
+
+import csv
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+from scipy.io import wavfile
+
+from beamtap.service.wavfile import WavReader, WavWriter
+
+CONFIG = """
+[array]
+line = {{ count = 12, spacing_m = 0.5 }}
+[medium]
+sound_speed_mps = 1500.0
+[input]
+samplerate_hz = 16000
+block_frames = 512
+scene_noise_db = -70.0
+[[input.scene]]
+azimuth_deg = {az}
+signal = "tone"
+frequency_hz = 1000.0
+level_db = -13.0103
+[beams]
+fan = {{ from_deg = 0.0, to_deg = 180.0, step_deg = 1.0 }}
+band_hz = [600.0, 1400.0]
+audio_deg = [[{az}, 0.0], [20.0, 0.0]]
+"""
+
+
+def run(*args, **kw):
+    return subprocess.run([sys.executable, "-m", "beamtap", *args], capture_output=True, text=True,
+                          timeout=300, **kw)
+
+
+@pytest.fixture
+def scene(tmp_path):
+    cfg = tmp_path / "tank.toml"
+    cfg.write_text(CONFIG.format(az=71.5))
+    wav = tmp_path / "tank.wav"
+    r = run("simulate", str(cfg), "--seconds", "3", "--out", str(wav))
+    assert r.returncode == 0, r.stderr
+    return cfg, wav
+
+
+def test_help_and_version():
+    r = run("--help")
+    assert r.returncode == 0
+    for name in ("check", "simulate", "process", "pattern"):
+        assert name in r.stdout
+    v = run("--version")
+    assert v.returncode == 0 and v.stdout.startswith("beamtap ")
+
+
+def test_check_prints_summary(scene):
+    cfg, _ = scene
+    r = run("check", str(cfg))
+    assert r.returncode == 0, r.stderr
+    assert "bulk delay D = " in r.stdout and "mirror image" in r.stdout
+
+
+def test_simulate_then_process(scene, tmp_path):
+    cfg, wav = scene
+    fs, raw = wavfile.read(wav)  # a reference reader can read what simulate wrote
+    assert fs == 16000 and raw.shape == (48000, 12) and raw.dtype == np.float32
+    out = tmp_path / "out"
+    r = run("process", str(cfg), str(wav), "--out", str(out))
+    assert r.returncode == 0, r.stderr
+    beams = list(csv.reader(open(out / "beams.csv")))
+    assert beams[0] == ["beam", "azimuth_deg", "elevation_deg"] and len(beams) == 182
+    power = np.genfromtxt(out / "power.csv", delimiter=",", names=True)
+    assert power.dtype.names[0] == "time_s" and len(power.dtype.names) == 182
+    rows = np.array([list(r)[1:] for r in power])
+    assert len(rows) == 48000 // 512
+    peak = np.argmax(rows[5:].mean(axis=0))
+    assert float(beams[peak + 1][1]) == pytest.approx(71.5, abs=1.0)
+    # level: a -13.01 dB RMS tone (amplitude 0.316) from the look direction, unity gain
+    assert rows[5:, 71].mean() == pytest.approx(-13.01, abs=0.2)  # beam 71° is within 0.5° of 71.5°
+    fs_a, audio = wavfile.read(out / "audio.wav")
+    assert audio.shape == (48000, 2) and audio.dtype == np.float32
+    # aligned to the input time axis: the look beam equals the tone at the phase centre
+    t = np.arange(48000) / 16000
+    want = np.sqrt(2) * 10 ** (-13.0103 / 20) * np.sin(2 * np.pi * 1000 * t)
+    assert np.max(np.abs(audio[2000:-2000, 0] - want[2000:-2000])) < 2e-3
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["frames_processed"] == 48000 and summary["nan_samples"] == 0
+    assert summary["bulk_delay_samples"] > 0 and "[array]" in summary["config"]
+
+
+def test_integer_wav_input_and_clip_count(scene, tmp_path):
+    cfg, wav = scene
+    _, x = wavfile.read(wav)
+    x16 = np.round(x * 32767).astype(np.int16)
+    x16[100, 0] = -32768  # two full-scale codes
+    x16[200, 3] = 32767
+    p16 = tmp_path / "i16.wav"
+    wavfile.write(p16, 16000, x16)
+    r = run("process", str(cfg), str(p16), "--out", str(tmp_path / "o16"))
+    assert r.returncode == 0, r.stderr
+    s = json.loads((tmp_path / "o16/summary.json").read_text())
+    assert s["input_format"] == "int16" and s["clipped_samples"] == 2
+
+
+def test_int24_writer_read_by_scipy(tmp_path, rng):
+    x = (0.5 * rng.standard_normal((1000, 3))).clip(-1, 1).astype(np.float32)
+    p = tmp_path / "a24.wav"
+    with WavWriter(p, 8000, 3, "int24") as w:
+        w.write(x[:400])
+        w.write(x[400:])
+    fs, y = wavfile.read(p)  # scipy returns 24-bit PCM left-justified in int32
+    assert fs == 8000 and y.shape == (1000, 3)
+    assert np.max(np.abs(y / 2.0**31 - x)) <= 2.0**-23
+    with WavReader(p) as r:
+        z, _ = r.read(5000)
+    assert r.sample_format == "int24" and np.max(np.abs(z - x)) <= 2.0**-23
+
+
+def test_process_mismatches_are_one_line_errors(scene, tmp_path):
+    cfg, wav = scene
+    few = tmp_path / "few.wav"
+    wavfile.write(few, 16000, np.zeros((1000, 4), np.float32))
+    r = run("process", str(cfg), str(few), "--out", str(tmp_path / "x"))
+    assert r.returncode == 2 and r.stderr.count("\n") == 1 and "4 channels" in r.stderr
+    other = tmp_path / "rate.wav"
+    wavfile.write(other, 44100, np.zeros((1000, 12), np.float32))
+    r = run("process", str(cfg), str(other), "--out", str(tmp_path / "y"))
+    assert r.returncode == 2 and "44100" in r.stderr and "Traceback" not in r.stderr
+    junk = tmp_path / "junk.wav"
+    junk.write_bytes(b"not a wav at all")
+    r = run("process", str(cfg), str(junk), "--out", str(tmp_path / "z"))
+    assert r.returncode == 2 and "not a readable WAV" in r.stderr
+    r = run("process", str(tmp_path / "none.toml"), str(wav), "--out", str(tmp_path / "z"))
+    assert r.returncode == 2 and "none.toml" in r.stderr
+    r = run("simulate", str(cfg), "--seconds", "-1", "--out", str(tmp_path / "n.wav"))
+    assert r.returncode == 2 and "--seconds" in r.stderr
+    r = run("simulate", str(cfg), "--seconds", "abc", "--out", str(tmp_path / "n.wav"))
+    assert r.returncode == 2 and r.stderr.count("\n") == 1
+
+
+def test_pattern_csv(scene, tmp_path):
+    cfg, _ = scene
+    out = tmp_path / "p.csv"
+    r = run("pattern", str(cfg), "--freq", "1500", "--look", "90", "--out", str(out))
+    assert r.returncode == 0, r.stderr
+    table = np.genfromtxt(out, delimiter=",", names=True)
+    i = np.argmax(table["response_db"])
+    assert table["azimuth_deg"][i] in (90.0, -90.0)
+    assert table["response_db"][i] == pytest.approx(0.0, abs=1e-6)
+    # 12 sensors at λ/2 (1500 Hz, 0.5 m): first null at cos θ = λ/(N d) = 1/6 (Van Trees 2002, §2.4)
+    az = table["azimuth_deg"]
+    u = np.cos(np.radians(az))
+    near = (u > 0.05) & (u < 0.3)
+    assert u[near][np.argmin(table["response_db"][near])] == pytest.approx(1 / 6, abs=0.002)
