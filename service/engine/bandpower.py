@@ -68,13 +68,13 @@ class BandFilter:
 def default_transition_hz(band_hz, samplerate_hz: float) -> float:
     """Transition width used when the config gives none.
 
-    A quarter of the band width, but never more than the room below the
-    lower edge or above the upper edge, and at least fs/1000 (common
-    practice: narrower transitions cost filter length and latency).
+    Half the band width, but never more than the room below the lower edge
+    or above the upper edge, and at least fs/1000 (common practice:
+    narrower transitions cost filter length, frame length and latency).
     """
     low, high = band_hz
     room = min(low, samplerate_hz / 2.0 - high)
-    return float(max(min(0.25 * (high - low), room), samplerate_hz / 1000.0))
+    return float(max(min(0.5 * (high - low), room), samplerate_hz / 1000.0))
 
 
 def design_band_filter(band_hz, samplerate_hz: float, transition_hz: float | None = None) -> BandFilter:

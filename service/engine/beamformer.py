@@ -31,6 +31,8 @@ from .geometry import ArrayGeometry
 
 #: Default audio crossfade after a retarget, seconds.
 CROSSFADE_S = 0.010
+#: Largest audio beams × sensors product formed element-wise rather than by matrix products.
+_ELEMENTWISE_MAX = 128
 
 
 @dataclass(frozen=True)
@@ -129,6 +131,11 @@ class _Steering:
         self.power = spectra(beams.power_deg, np.arange(self.k1, self.k2 + 1))
         n_audio = len(beams.audio_deg)
         self.audio = spectra(beams.audio_deg, np.arange(n_fft // 2 + 1)) if n_audio else None
+        # Few audio beams × sensors: an element-wise product beats one tiny matrix
+        # product per bin (measured in bench/); keep the layout each method streams.
+        self.audio_elementwise = bool(n_audio) and n_audio * pos.shape[0] <= _ELEMENTWISE_MAX
+        if self.audio_elementwise:
+            self.audio = np.ascontiguousarray(self.audio.transpose(1, 2, 0))  # (beams, sensors, bins)
 
     @property
     def nbytes(self) -> int:
@@ -232,8 +239,8 @@ class Beamformer:
         old, old_n = self._steer
         new, new_n = prepared
         same_audio_count = (old.audio is not None and new.audio is not None
-                            and old.audio.shape[1] == new.audio.shape[1] and old_n == new_n)
-        self._fade_from = (old.audio, self._sample) if same_audio_count else None
+                            and len(old.beams.audio_deg) == len(new.beams.audio_deg) and old_n == new_n)
+        self._fade_from = (old.audio, old.audio_elementwise, self._sample) if same_audio_count else None
         self._steer = prepared
         if new_n > self._buf.shape[1] - self.block_frames:
             self._grow_history(new_n)
@@ -309,7 +316,7 @@ class Beamformer:
         steer, n_fft = self._steer
         frames = len(x)
         first = self._sample
-        n_audio = 0 if steer.audio is None else steer.audio.shape[1]
+        n_audio = len(steer.beams.audio_deg)
         audio = np.empty((frames, n_audio), np.float32)
         released = []
         pos = 0
@@ -347,20 +354,15 @@ class Beamformer:
 
     def _audio(self, spec: np.ndarray, b: int, n_fft: int) -> np.ndarray:
         steer = self._steer[0]
-        y = self._beam_audio(steer.audio, spec, b, n_fft)
+        y = _beam_audio(steer.audio, steer.audio_elementwise, spec, b, n_fft)
         if self._fade_from is not None:
-            old, start = self._fade_from
+            old, old_elementwise, start = self._fade_from
             n = self._sample + np.arange(b)
             ramp = np.clip((n - start + 0.5) / self.crossfade_frames, 0.0, 1.0)[:, None]
-            y = ramp * y + (1.0 - ramp) * self._beam_audio(old, spec, b, n_fft)
+            y = ramp * y + (1.0 - ramp) * _beam_audio(old, old_elementwise, spec, b, n_fft)
             if self._sample + b >= start + self.crossfade_frames:
                 self._fade_from = None
         return y
-
-    @staticmethod
-    def _beam_audio(h: np.ndarray, spec: np.ndarray, b: int, n_fft: int) -> np.ndarray:
-        y = np.matmul(h, spec.T[:, :, None])[:, :, 0]  # (bins, n_audio)
-        return sfft.irfft(y, n=n_fft, axis=0)[n_fft - b:]
 
     def _release_power(self) -> tuple:
         steer = self._steer[0]
@@ -377,6 +379,15 @@ class Beamformer:
             ms = ev.mean_square(y[:, :, lo:lo + len(ev.bins)])
             out[:, i, :] = 10.0 * np.log10(np.maximum(ms, 1e-30))
         return out, starts
+
+
+def _beam_audio(h: np.ndarray, elementwise: bool, spec: np.ndarray, b: int, n_fft: int) -> np.ndarray:
+    """The last ``b`` samples of the audio beams from one frame's channel spectra."""
+    if elementwise:
+        y = (h * spec[None, :, :]).sum(axis=1).T  # (bins, n_audio)
+    else:
+        y = np.matmul(h, spec.T[:, :, None])[:, :, 0]
+    return sfft.irfft(y, n=n_fft, axis=0)[n_fft - b:]
 
 
 def _empty_rows(n_bands: int, n_beams: int) -> tuple:
@@ -403,9 +414,14 @@ def sanitize(block: np.ndarray) -> tuple:
         Finite samples with |x| >= 1 (at or beyond full scale).
     """
     x = np.array(block, dtype=np.float32, order="C")
-    bad = ~np.isfinite(x)
-    nan_count = int(bad.sum())
-    if nan_count:
+    if x.size == 0:
+        return x, 0, 0
+    top, bottom = float(x.max()), float(x.min())  # fast path: no temporaries for clean data
+    nan_count = 0
+    if not (np.isfinite(top) and np.isfinite(bottom)):
+        bad = ~np.isfinite(x)
+        nan_count = int(bad.sum())
         x[bad] = 0.0
-    clip_count = int(np.count_nonzero(np.abs(x) >= 1.0))
+        top, bottom = float(x.max()), float(x.min())
+    clip_count = int(np.count_nonzero(np.abs(x) >= 1.0)) if (top >= 1.0 or bottom <= -1.0) else 0
     return x, nan_count, clip_count
