@@ -79,6 +79,28 @@ def cmd_pattern(args):
     print(f"wrote {args.out}: {len(table)} directions, look {look[0]:g}°/{look[1]:g}° at {args.freq:g} Hz")
 
 
+def cmd_serve(args):
+    from beamtap.service import serve  # noqa: PLC0415
+
+    serve.setup_logging(args.log_level)
+    config = load_config(args.config)
+    return serve.run(config, args.config is None, args.publish, args.control, args.ready_file, args.seconds)
+
+
+def cmd_devices(args):
+    from beamtap.errors import load_sounddevice  # noqa: PLC0415
+
+    sd = load_sounddevice()
+    devices = sd.query_devices()
+    default_in = sd.default.device[0] if isinstance(sd.default.device, (list, tuple)) else sd.default.device
+    print(f"{'index':>5}  {'in':>3}  {'out':>3}  {'rate Hz':>8}  name")
+    for i, d in enumerate(devices):
+        mark = "*" if i == default_in else " "
+        print(f"{i:>4}{mark}  {d['max_input_channels']:>3}  {d['max_output_channels']:>3}  "
+              f"{d['default_samplerate']:>8g}  {d['name']}")
+    print("(* default input; [input] device takes the name or the index)")
+
+
 COMMANDS = {}
 
 
@@ -114,6 +136,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--look", type=_look, default=None, help="look direction AZ[,EL] in degrees "
                    "(default: broadside for a line, 0° otherwise)")
     p.add_argument("--out", required=True, help="output .csv (or .png with the plot extra)")
+    p = _add(sub, "serve", cmd_serve, "run the live beamformer service (publishes power and audio over ZeroMQ)")
+    p.add_argument("--config", default=None, help="config file (default: the built-in demo scene)")
+    p.add_argument("--publish", default=None, metavar="ENDPOINT", help="override [publish] endpoint")
+    p.add_argument("--control", default=None, metavar="ENDPOINT", help="override [control] endpoint")
+    p.add_argument("--ready-file", default=None, metavar="PATH",
+                   help="write the bound endpoints as JSON here once serving")
+    p.add_argument("--seconds", type=float, default=None, help="stop after this many seconds")
+    p.add_argument("--log-level", default="INFO", choices=["DEBUG", "INFO", "WARNING", "ERROR"])
+
+    _add(sub, "devices", cmd_devices, "list sound cards with their input channels and default sample rates")
     return parser
 
 

@@ -1,0 +1,219 @@
+"""The control socket: msgpack requests and replies on a ZeroMQ REP socket.
+
+Every request is a map with a ``cmd`` key; every reply is a map with
+``ok`` (bool) and either the result keys or ``error`` (one line saying what
+was wrong). The socket runs in its own thread; changes reach the
+processing thread only as fully validated, fully prepared steering, taken
+at a block boundary, so no request can stop the service or change it
+half-way.
+
+Commands: ``ping``, ``status``, ``config``, ``beams`` (read, or replace
+with ``set``), ``record`` (``action``: start | stop | status) and ``mark``.
+"""
+
+from __future__ import annotations
+
+import logging
+import threading
+
+import zmq
+
+from beamtap.client.protocol import MAX_REQUEST_BYTES, ProtocolError, pack, unpack
+from beamtap.errors import ConfigError, UsageError
+
+from . import config as cfg
+
+log = logging.getLogger("beamtap.control")
+
+COMMANDS = ("ping", "status", "config", "beams", "record", "mark")
+
+
+class RequestError(Exception):
+    """A bad request; the message goes back to the client."""
+
+
+def beams_as_request(beams) -> dict:
+    """The current beam set in the same shape a ``beams`` ``set`` request takes."""
+    out = {
+        "directions_deg": beams.power_deg.tolist(),
+        "audio_deg": beams.audio_deg.tolist(),
+        "shading": beams.shading,
+        "sidelobe_db": beams.sidelobe_db,
+        "nbar": beams.nbar,
+        "band_hz": [list(b) for b in beams.bands_hz],
+    }
+    if beams.transition_hz is not None:
+        out["transition_hz"] = beams.transition_hz
+    return out
+
+
+def beams_toml(beams) -> str:
+    """The beam set as a ``[beams]`` TOML section."""
+    req = beams_as_request(beams)
+    lines = ["[beams]"]
+    for key, value in req.items():
+        lines.append(f"{key} = {_toml_value(value)}")
+    return "\n".join(lines) + "\n"
+
+
+def _toml_value(v):
+    if isinstance(v, str):
+        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_toml_value(e) for e in v) + "]"
+    return repr(float(v)) if isinstance(v, float) else str(v)
+
+
+class ControlServer:
+    """REP socket serving control requests in a thread.
+
+    Parameters
+    ----------
+    endpoint : str
+    service : object
+        Provides ``pipeline``, ``config`` and optionally ``recorder``.
+    """
+
+    def __init__(self, endpoint: str, service, context=None):
+        self.service = service
+        self._ctx = context or zmq.Context.instance()
+        self._sock = self._ctx.socket(zmq.REP)
+        self._sock.setsockopt(zmq.LINGER, 0)
+        try:
+            self._sock.bind(endpoint)
+        except zmq.ZMQError as exc:
+            self._sock.close()
+            raise UsageError(f"[control] endpoint = {endpoint!r}: cannot bind: {exc}") from None
+        self.endpoint = self._sock.getsockopt_string(zmq.LAST_ENDPOINT)
+        self._stop = threading.Event()
+        self._thread = None
+        self.requests = 0
+        self.errors = 0
+
+    def start(self):
+        self._thread = threading.Thread(target=self._run, name="beamtap-control", daemon=True)
+        self._thread.start()
+
+    def stop(self):
+        self._stop.set()
+        if self._thread is not None:
+            self._thread.join(timeout=2.0)
+        self._sock.close(linger=0)
+
+    def _run(self):
+        while not self._stop.is_set():
+            if not self._sock.poll(100):
+                continue
+            try:
+                frames = self._sock.recv_multipart()
+            except zmq.ZMQError:
+                continue
+            reply = self.handle(frames)
+            try:
+                self._sock.send(pack(reply))
+            except zmq.ZMQError as exc:
+                log.warning("control: reply not sent: %s", exc)
+
+    def handle(self, frames) -> dict:
+        """Answer one request (list of frames); never raises."""
+        self.requests += 1
+        try:
+            if len(frames) != 1:
+                raise RequestError(f"a request is one msgpack frame, got {len(frames)} frames")
+            try:
+                req = unpack(frames[0], MAX_REQUEST_BYTES)
+            except ProtocolError as exc:
+                raise RequestError(f"request {exc}") from None
+            if not isinstance(req, dict):
+                raise RequestError(f"request must be a map with a 'cmd' key, got {type(req).__name__}")
+            cmd = req.get("cmd")
+            if not isinstance(cmd, str):
+                raise RequestError(f"'cmd' must be a string, one of {', '.join(COMMANDS)}; got {cmd!r}")
+            if cmd not in COMMANDS:
+                raise RequestError(f"unknown cmd {cmd!r}; expected one of {', '.join(COMMANDS)}")
+            result = getattr(self, f"_cmd_{cmd}")(req)
+            return {"ok": True, "cmd": cmd, **result}
+        except RequestError as exc:
+            self.errors += 1
+            return {"ok": False, "error": str(exc)}
+        except (ConfigError, UsageError) as exc:
+            self.errors += 1
+            return {"ok": False, "error": str(exc)}
+        except Exception as exc:  # a bug must not take the socket down: report it
+            self.errors += 1
+            log.exception("control request failed")
+            return {"ok": False, "error": f"internal error: {type(exc).__name__}: {exc}"}
+
+    # ---- commands ----------------------------------------------------------
+    def _cmd_ping(self, req):
+        import beamtap  # noqa: PLC0415
+
+        return {"version": beamtap.__version__, "stream": self.service.stream_id}
+
+    def _cmd_status(self, req):
+        return {"status": self.service.pipeline.status()}
+
+    def _cmd_config(self, req):
+        p = self.service.pipeline
+        return {"text": self.service.config.text, "where": self.service.config.where,
+                "beams_toml": beams_toml(p.engine.beams), "beam_table": p.beam_table_id}
+
+    def _cmd_beams(self, req):
+        p = self.service.pipeline
+        unknown = set(req) - {"cmd", "set"}
+        if unknown:
+            raise RequestError(f"unknown key {sorted(unknown)[0]!r} in beams request; expected 'set'")
+        if "set" not in req:
+            return {"beams": beams_as_request(p.engine.beams), "table": p.beam_table}
+        change = req["set"]
+        if not isinstance(change, dict) or not change:
+            raise RequestError("'set' must be a non-empty map of [beams] keys")
+        merged = beams_as_request(p.engine.beams)
+        if any(k in change for k in ("fan", "directions_deg", "grid")):
+            merged.pop("directions_deg")
+        merged.update(change)
+        table = cfg._Table(merged, "beams request", "set")
+        beams, batch = cfg._beams(table, p.samplerate_hz)
+        if batch != p.engine.power_batch_blocks:
+            raise RequestError("set.power_batch_blocks cannot change while running")
+        try:
+            table_id = p.request_retarget(beams)
+        except Exception as exc:
+            raise RequestError(f"beams not applied: {exc}") from None
+        return {"beam_table": table_id, "beams": beams_as_request(beams)}
+
+    def _recorder(self):
+        rec = getattr(self.service, "recorder", None)
+        if rec is None:
+            raise RequestError("recording is not available in this service")
+        return rec
+
+    def _cmd_record(self, req):
+        action = req.get("action", "status")
+        if action not in ("start", "stop", "status"):
+            raise RequestError(f"record action {action!r}; expected start, stop or status")
+        rec = self._recorder()
+        if action == "start":
+            unknown = set(req) - {"cmd", "action", "what", "label"}
+            if unknown:
+                raise RequestError(f"unknown key {sorted(unknown)[0]!r} in record start")
+            what = req.get("what")
+            if what is not None and (not isinstance(what, list) or not what
+                                     or any(w not in cfg.RECORD_KINDS for w in what)):
+                raise RequestError(f"what={what!r}: expected a list drawn from {', '.join(cfg.RECORD_KINDS)}")
+            label = req.get("label", "")
+            if not isinstance(label, str) or len(label) > 200:
+                raise RequestError("label must be a string of at most 200 characters")
+            return {"record": rec.start(what, label)}
+        if action == "stop":
+            return {"record": rec.stop()}
+        return {"record": rec.status()}
+
+    def _cmd_mark(self, req):
+        text = req.get("text")
+        if not isinstance(text, str) or not text.strip() or len(text) > 1000:
+            raise RequestError("mark needs 'text': a non-empty string of at most 1000 characters")
+        rec = self._recorder()
+        return {"mark": rec.mark(text, self.service.pipeline.engine.next_sample)}

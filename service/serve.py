@@ -1,0 +1,143 @@
+"""``beamtap serve``: the live service, wired together and run until a signal.
+
+source → ring buffer → pipeline (engine) → publisher; control socket;
+recorder. SIGINT and SIGTERM stop capture, close files and sockets, and
+exit with status 0.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import os
+import signal
+import threading
+import time
+import uuid
+from dataclasses import replace
+
+import zmq
+
+from .config import Config
+from .control import ControlServer
+from .pipeline import Pipeline
+from .publisher import Publisher
+from .sources import make_source
+
+log = logging.getLogger("beamtap.serve")
+
+
+class Service:
+    """The running service (also usable from Python and tests).
+
+    Parameters
+    ----------
+    config : Config
+    builtin : bool
+        True when running the built-in demo scene (said in the first log line).
+    """
+
+    def __init__(self, config: Config, builtin: bool = False):
+        self.config = config
+        self.builtin = builtin
+        self.stream_id = uuid.uuid4().hex[:12]
+        self.context = zmq.Context()
+        self.source = None
+        self.publisher = None
+        self.control = None
+        self.pipeline = None
+        self.recorder = None
+
+    def start(self) -> None:
+        cfg = self.config
+        if self.builtin:
+            log.info("no config given: running the built-in demo scene (16 hydrophones off a pier, "
+                     "a passing boat, a 1.5 kHz pinger, sea noise)")
+        for warning in cfg.medium.warnings:
+            log.warning(warning)
+        self.source = make_source(cfg)
+        self.publisher = Publisher(cfg.publish.endpoint, self.stream_id, cfg.publish.send_queue, self.context)
+        try:
+            from .recorder import Recorder  # noqa: PLC0415
+
+            self.recorder = Recorder(cfg, self)
+        except ImportError:
+            self.recorder = None
+        self.pipeline = Pipeline(cfg, self.source, self.publisher, self.recorder)
+        self.control = ControlServer(cfg.control.endpoint, self, self.context)
+        s = self.pipeline.array_summary()
+        log.info("publishing on %s (topics power, audio%s, status, beams); control on %s",
+                 self.publisher.endpoint, ", raw" if cfg.publish.raw else "", self.control.endpoint)
+        log.info("source: %s; %g Hz, blocks of %d frames", self.source.describe(), cfg.input.samplerate_hz,
+                 cfg.input.block_frames)
+        log.info("array: %s, %d of %d sensors active, aperture %.3f m, sound speed %.2f m/s (%s)",
+                 s["array_kind"], s["active_sensors"], s["sensors"], s["aperture_m"], s["sound_speed_mps"],
+                 s["sound_speed_from"])
+        log.info("beams: %d power, %d audio; bulk delay D = %d samples (%.3f ms); latency budget block + D = "
+                 "%.2f ms", s["power_beams"], s["audio_beams"], s["bulk_delay_samples"], s["bulk_delay_ms"],
+                 s["latency_budget_ms"])
+        for w in s["warnings"]:
+            log.warning(w)
+        self.control.start()
+        self.pipeline.start()
+        self.source.start()
+        if self.recorder is not None:
+            self.recorder.start_thread()
+            if cfg.record.on_start:
+                self.recorder.start(None, "on start")
+
+    def stop(self) -> None:
+        for part in (self.source, self.pipeline, self.recorder, self.control):
+            if part is not None:
+                try:
+                    part.stop()
+                except Exception:  # stopping must finish even if one part misbehaves
+                    log.exception("while stopping %s", type(part).__name__)
+        if self.publisher is not None:
+            self.publisher.close()
+        self.context.term()
+
+    def endpoints(self) -> dict:
+        return {"publish": self.publisher.endpoint, "control": self.control.endpoint, "stream": self.stream_id,
+                "pid": os.getpid()}
+
+
+def run(config: Config, builtin: bool, publish: str | None = None, control: str | None = None,
+        ready_file: str | None = None, seconds: float | None = None) -> int:
+    """Run the service until SIGINT/SIGTERM (or ``seconds``); returns the exit status."""
+    if publish:
+        config = replace(config, publish=replace(config.publish, endpoint=publish))
+    if control:
+        config = replace(config, control=replace(config.control, endpoint=control))
+    stop = threading.Event()
+
+    def on_signal(signum, frame):
+        log.info("signal %s: stopping", signal.Signals(signum).name)
+        stop.set()
+
+    signal.signal(signal.SIGINT, on_signal)
+    signal.signal(signal.SIGTERM, on_signal)
+    service = Service(config, builtin)
+    try:
+        service.start()
+        if ready_file:
+            tmp = f"{ready_file}.tmp"
+            with open(tmp, "w") as f:
+                json.dump(service.endpoints(), f)
+            os.replace(tmp, ready_file)
+        deadline = None if seconds is None else time.monotonic() + seconds
+        while not stop.wait(0.2):
+            if deadline is not None and time.monotonic() >= deadline:
+                break
+            if service.pipeline.stopped.is_set():
+                log.error("processing thread stopped unexpectedly")
+                return 1
+    finally:
+        service.stop()
+    log.info("stopped")
+    return 0
+
+
+def setup_logging(level: str = "INFO") -> None:
+    logging.basicConfig(level=getattr(logging, level.upper(), logging.INFO),
+                        format="%(asctime)s %(levelname)s %(name)s: %(message)s")

@@ -1,0 +1,328 @@
+"""Sources: where frames come from, behind one small interface.
+
+Every source fills a :class:`~beamtap.service.ringbuffer.RingBuffer` with
+float32 frames shaped (frames, input channels) and keeps a
+:class:`~beamtap.service.clock.SampleClock` of their capture times.
+
+``soundcard``  a PortAudio input stream (sounddevice); its callback only
+               copies into the ring and notes status flags.
+``file``       a multichannel WAV, paced in real time or as fast as the
+               engine takes it, optionally looped.
+``simulated``  the config's scene, generated block by block in real time.
+``stream``     the ``raw`` topic of another beamtap service.
+``session``    a recorded session folder (see :mod:`.session`).
+"""
+
+from __future__ import annotations
+
+import logging
+import threading
+import time
+
+import numpy as np
+
+from beamtap.errors import UsageError, load_sounddevice
+
+from .clock import SampleClock
+from .ringbuffer import RingBuffer
+
+log = logging.getLogger("beamtap.source")
+
+
+class Source:
+    """Base class: a producer thread (or callback) feeding a ring buffer.
+
+    Attributes
+    ----------
+    ring : RingBuffer
+    clock : SampleClock
+    channels : int
+    samplerate_hz : float
+    finished : threading.Event
+        Set when a finite source (a file without looping) has delivered
+        everything.
+    """
+
+    kind = "source"
+
+    def __init__(self, channels: int, samplerate_hz: float, ring_frames: int):
+        self.channels = int(channels)
+        self.samplerate_hz = float(samplerate_hz)
+        self.ring = RingBuffer(ring_frames, self.channels)
+        self.clock = SampleClock(self.samplerate_hz)
+        self.finished = threading.Event()
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+        self.input_overflows = 0
+        self.error: str | None = None
+
+    def describe(self) -> str:
+        return self.kind
+
+    def start(self) -> None:
+        self._thread = threading.Thread(target=self._run_guarded, name=f"beamtap-{self.kind}", daemon=True)
+        self._thread.start()
+
+    def _run_guarded(self):
+        try:
+            self._run()
+        except Exception as exc:  # a source failure is reported, never a silent stop
+            self.error = f"{self.kind} source stopped: {exc}"
+            log.error(self.error)
+        finally:
+            self.finished.set()
+            self.ring.wake()
+
+    def _run(self):
+        raise NotImplementedError
+
+    def stop(self) -> None:
+        self._stop.set()
+        self.ring.wake()
+        if self._thread is not None:
+            self._thread.join(timeout=2.0)
+
+    def stats(self) -> dict:
+        r = self.ring
+        return {"frames_captured": int(r.frames_offered), "ring_overflows": int(r.overflow_events),
+                "input_overflows": int(self.input_overflows), "frames_lost": int(r.frames_dropped)}
+
+    # Pacing shared by the generated and file sources.
+    def _paced_write(self, block: np.ndarray, start_time: float, realtime: bool) -> None:
+        if realtime:
+            due = start_time + (self.ring.next_stream_index + len(block)) / self.samplerate_hz
+            delay = due - time.monotonic()
+            if delay > 0:
+                self._stop.wait(delay)
+            self.ring.write(block)
+        else:
+            # As fast as the engine takes it: wait for room instead of dropping.
+            while self.ring.capacity - self.ring.available < len(block) and not self._stop.is_set():
+                self._stop.wait(0.002)
+            self.ring.write(block)
+
+
+class SimulatedSource(Source):
+    """The config's simulated scene, generated in real time."""
+
+    kind = "simulated"
+
+    def __init__(self, scene, channels, samplerate_hz, block_frames, ring_frames, realtime=True):
+        super().__init__(channels, samplerate_hz, ring_frames)
+        self.scene, self.block_frames, self.realtime = scene, int(block_frames), realtime
+
+    def _run(self):
+        t0 = time.monotonic()
+        self.clock = SampleClock(self.samplerate_hz, time.time())
+        while not self._stop.is_set():
+            self._paced_write(self.scene.render(self.block_frames), t0, self.realtime)
+
+
+class FileSource(Source):
+    """A multichannel WAV played into the pipeline."""
+
+    kind = "file"
+
+    def __init__(self, path, channels, samplerate_hz, block_frames, ring_frames, realtime=True, loop=False):
+        from .wavfile import WavReader  # noqa: PLC0415
+
+        self.path = str(path)
+        with WavReader(self.path) as r:
+            if r.samplerate_hz != int(round(samplerate_hz)):
+                raise UsageError(f"[input] path = {self.path}: sample rate {r.samplerate_hz} Hz does not "
+                                 f"match samplerate_hz = {samplerate_hz:g}")
+            if r.channels < channels:
+                raise UsageError(f"[input] path = {self.path}: {r.channels} channels, the array needs {channels}")
+            self.file_channels = r.channels
+        super().__init__(channels, samplerate_hz, ring_frames)
+        self.block_frames, self.realtime, self.loop = int(block_frames), realtime, loop
+        self.clipped = 0
+
+    def describe(self) -> str:
+        return f"file {self.path}" + (" (looped)" if self.loop else "") + ("" if self.realtime else " (fast)")
+
+    def _run(self):
+        from .wavfile import WavReader  # noqa: PLC0415
+
+        t0 = time.monotonic()
+        self.clock = SampleClock(self.samplerate_hz, time.time())
+        while not self._stop.is_set():
+            with WavReader(self.path) as r:
+                while not self._stop.is_set():
+                    block, clipped = r.read(self.block_frames)
+                    if len(block) == 0:
+                        break
+                    self.clipped += clipped
+                    self._paced_write(block[:, : self.channels], t0, self.realtime)
+            if not self.loop:
+                break
+
+
+class SoundcardSource(Source):
+    """A sound card through PortAudio.
+
+    The callback copies into the ring buffer and notes status flags; an
+    input overflow reported by PortAudio becomes a gap whose length is
+    estimated from the ADC timestamps (or the callback clock when the
+    driver gives none).
+    """
+
+    kind = "soundcard"
+
+    def __init__(self, device, channels, samplerate_hz, block_frames, ring_frames):
+        super().__init__(channels, samplerate_hz, ring_frames)
+        self.sd = load_sounddevice()
+        self.block_frames = int(block_frames)
+        self.device = _find_device(self.sd, device)
+        try:
+            self.sd.check_input_settings(device=self.device, channels=self.channels, dtype="float32",
+                                         samplerate=self.samplerate_hz)
+        except Exception as exc:
+            info = self.sd.query_devices(self.device)
+            raise UsageError(
+                f"[input] device = {device!r} ({info['name']}): cannot capture {self.channels} channels at "
+                f"{self.samplerate_hz:g} Hz ({exc}); it offers {info['max_input_channels']} input channels, "
+                f"default rate {info['default_samplerate']:g} Hz") from None
+        self.device_name = self.sd.query_devices(self.device)["name"]
+        self._expected_adc = None
+        self._stream = None
+
+    def describe(self) -> str:
+        return f"sound card {self.device_name!r}"
+
+    def _callback(self, indata, frames, t, status):
+        # Real-time thread: copy and note flags only.
+        if status.input_overflow:
+            self.input_overflows += 1
+            if self._expected_adc is not None and t.inputBufferAdcTime > 0:
+                lost = int(round((t.inputBufferAdcTime - self._expected_adc) * self.samplerate_hz))
+                self.ring.lost(lost)
+        self.ring.write(indata)
+        if t.inputBufferAdcTime > 0:
+            self._expected_adc = t.inputBufferAdcTime + frames / self.samplerate_hz
+            self._last_adc = (self.ring.next_stream_index - frames, t.inputBufferAdcTime)
+
+    def start(self):
+        self._last_adc = None
+        self._stream = self.sd.InputStream(device=self.device, channels=self.channels, dtype="float32",
+                                           samplerate=self.samplerate_hz, blocksize=self.block_frames,
+                                           callback=self._callback)
+        self._offset = time.time() - self._stream.time  # PortAudio stream time to UTC
+        self.clock = SampleClock(self.samplerate_hz, time.time())
+        self._stream.start()
+        self._thread = threading.Thread(target=self._watch_clock, name="beamtap-adc-clock", daemon=True)
+        self._thread.start()
+
+    def _watch_clock(self):
+        # Feed ADC timestamps to the sample clock outside the callback.
+        while not self._stop.wait(0.5):
+            last = self._last_adc
+            if last is not None:
+                self.clock.observe(last[0], last[1] + self._offset)
+
+    def stop(self):
+        self._stop.set()
+        if self._stream is not None:
+            self._stream.stop()
+            self._stream.close()
+        super().stop()
+
+
+def _find_device(sd, device):
+    if device is None:
+        return None
+    if isinstance(device, int):
+        try:
+            sd.query_devices(device)
+        except Exception:
+            raise UsageError(f"[input] device = {device}: no such device (see 'beamtap devices')") from None
+        return device
+    matches = [i for i, d in enumerate(sd.query_devices())
+               if device.lower() in d["name"].lower() and d["max_input_channels"] > 0]
+    exact = [i for i in matches if sd.query_devices(i)["name"].lower() == device.lower()]
+    if exact:
+        return exact[0]
+    if not matches:
+        raise UsageError(f"[input] device = {device!r}: no input device has that name (see 'beamtap devices')")
+    return matches[0]
+
+
+class StreamSource(Source):
+    """The ``raw`` topic of another beamtap service.
+
+    A jump in the upstream ``first_sample`` or sequence number (a dropped
+    message, a restarted upstream) becomes a gap here too.
+    """
+
+    kind = "stream"
+
+    def __init__(self, endpoint, channels, samplerate_hz, ring_frames):
+        super().__init__(channels, samplerate_hz, ring_frames)
+        self.endpoint = endpoint
+        self.upstream_gaps = 0
+
+    def describe(self) -> str:
+        return f"raw stream from {self.endpoint}"
+
+    def _run(self):
+        import zmq  # noqa: PLC0415
+
+        from beamtap.client.protocol import ProtocolError, decode  # noqa: PLC0415
+
+        ctx = zmq.Context.instance()
+        with ctx.socket(zmq.SUB) as sock:
+            sock.setsockopt(zmq.RCVHWM, 1000)
+            sock.setsockopt(zmq.LINGER, 0)
+            sock.connect(self.endpoint)
+            sock.setsockopt(zmq.SUBSCRIBE, b"raw")
+            expect = None
+            stream_id = None
+            while not self._stop.is_set():
+                if not sock.poll(200):
+                    continue
+                try:
+                    _, header, data = decode(sock.recv_multipart(copy=False))
+                except ProtocolError as exc:
+                    log.warning("stream source: bad message from %s: %s", self.endpoint, exc)
+                    continue
+                if data is None or data.ndim != 2 or data.shape[1] < self.channels:
+                    log.warning("stream source: raw message with shape %s, need %d channels",
+                                None if data is None else data.shape, self.channels)
+                    continue
+                first = int(header["first_sample"])
+                if stream_id is None:
+                    stream_id = header.get("stream")
+                    self.clock = SampleClock(self.samplerate_hz, float(header["time_utc"]))
+                    expect = first
+                if header.get("stream") != stream_id:  # upstream restarted: loss of unknown length
+                    stream_id = header.get("stream")
+                    self.upstream_gaps += 1
+                    self.ring.lost(1)
+                    expect = first
+                elif first != expect:
+                    self.upstream_gaps += 1
+                    self.ring.lost(max(first - expect, 1))
+                expect = first + len(data)
+                self.ring.write(data[:, : self.channels])
+
+
+def make_source(config):
+    """The source a config asks for."""
+    inp, geo = config.input, config.geometry
+    ring = max(int(inp.ring_s * inp.samplerate_hz), 2 * inp.block_frames)
+    ch = geo.n_input_channels
+    if inp.source == "simulated":
+        from .offline import make_scene  # noqa: PLC0415
+
+        return SimulatedSource(make_scene(config), ch, inp.samplerate_hz, inp.block_frames, ring, inp.realtime)
+    if inp.source == "file":
+        return FileSource(inp.path, ch, inp.samplerate_hz, inp.block_frames, ring, inp.realtime, inp.loop)
+    if inp.source == "soundcard":
+        return SoundcardSource(inp.device, ch, inp.samplerate_hz, inp.block_frames, ring)
+    if inp.source == "stream":
+        return StreamSource(inp.endpoint, ch, inp.samplerate_hz, ring)
+    if inp.source == "session":
+        from .session import SessionSource  # noqa: PLC0415
+
+        return SessionSource(inp.path, ch, inp.samplerate_hz, inp.block_frames, ring, inp.realtime)
+    raise UsageError(f"[input] source = {inp.source!r} is not supported")
