@@ -18,7 +18,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from numpy.lib.stride_tricks import sliding_window_view
 from scipy.signal import firwin, lfilter
 
 from . import fracdelay
@@ -27,7 +26,7 @@ from .geometry import ArrayGeometry
 
 _TAPS = 48
 _BETA = 9.0
-_HOLD = 256  # samples over which a moving noise source's delays are held
+_HOLD = 1024  # samples over which a moving noise source's delays are held
 _NOISE_TAPS = 255
 
 
@@ -135,9 +134,9 @@ class Scene:
             if src.signal == "noise":
                 sensors += self._interpolate(self._noise[i], i, n0, frames)
             else:
-                lead_s = self.direction_at(i, t) @ self._pos.T / self.c  # (frames, sensors)
-                sensors += _closed_form(src, t[:, None] + lead_s)
-        sensors += self.noise_rms * self._sensor_rng.standard_normal(sensors.shape)
+                when = t[:, None] + (self.direction_at(i, t if src.sweep_deg_per_s else t[:1]) @ self._pos.T) / self.c
+                sensors += _closed_form(src, when)
+        sensors += self.noise_rms * self._sensor_rng.standard_normal(sensors.shape, dtype=np.float32)
         self.next_sample += frames
         out = np.zeros((frames, self.geometry.n_input_channels), np.float32)
         out[:, self.geometry.channels - 1] = sensors
@@ -145,9 +144,8 @@ class Scene:
 
     def _interpolate(self, stream: _NoiseStream, source_index: int, n0: int, frames: int) -> np.ndarray:
         stream.ensure(n0 + frames + self._lead)
-        windows = sliding_window_view(stream.buf, _TAPS)
         out = np.empty((frames, self.geometry.n_sensors))
-        # Sub-chunks on a fixed grid of the stream index keep rendering independent of call sizes.
+        # Stretches on a fixed grid of the stream index keep rendering independent of call sizes.
         edges = np.unique(np.concatenate([[n0, n0 + frames],
                                           np.arange((n0 // _HOLD + 1) * _HOLD, n0 + frames, _HOLD)]))
         for a, b in zip(edges[:-1], edges[1:]):
@@ -156,9 +154,9 @@ class Scene:
             at = a + lead  # fractional stream position each sensor hears at sample a
             i0 = np.floor(at).astype(np.int64)
             weights = fracdelay.windowed_sinc((at - i0)[:, None] - _OFFSETS[None, :], _TAPS, _BETA)
-            for m in range(len(i0)):
-                row = i0[m] + _OFFSETS[0] - stream.start
-                out[a - n0:b - n0, m] = windows[row:row + (b - a)] @ weights[m]
+            rows = i0 + _OFFSETS[0] - stream.start
+            for m, row in enumerate(rows):
+                out[a - n0:b - n0, m] = np.correlate(stream.buf[row:row + (b - a) + _TAPS - 1], weights[m], "valid")
         stream.trim(n0 + frames - self._lead)
         return out
 

@@ -1,0 +1,239 @@
+"""Subscribe to a beamtap service from Python, and control it.
+
+Three lines get beam power::
+
+    from beamtap.client import Subscriber
+    with Subscriber("tcp://127.0.0.1:5560", topics=["power"]) as sub:
+        for frame in sub:
+            print(frame.first_sample, frame.data.argmax())
+
+Needs only numpy, pyzmq and msgpack.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import zmq
+
+from . import protocol
+
+DEFAULT_PUBLISH = "tcp://127.0.0.1:5560"
+DEFAULT_CONTROL = "tcp://127.0.0.1:5561"
+
+
+@dataclass
+class Frame:
+    """One message from the stream.
+
+    Attributes
+    ----------
+    topic : str
+        ``"power"``, ``"audio"``, ``"raw"``, ``"status"`` or ``"beams"``.
+    header : dict
+        Every header key (see docs/protocol.md).
+    data : ndarray or None
+        ``power``: float32 (n_bands, n_beams), dB re full scale;
+        ``audio``: float32 (frames, n_audio); ``raw``: float32 (frames,
+        channels); None for ``status`` and ``beams``. A read-only view on
+        the received bytes (no copy).
+    gap : bool
+        True when messages or samples were lost before this one: the
+        service said so (``gap`` in the header), the per-topic sequence
+        number jumped (this subscriber was too slow), or ``first_sample``
+        did not follow on from the previous message of the topic.
+    missed_messages : int
+        Messages of this topic this subscriber did not receive.
+    """
+
+    topic: str
+    header: dict
+    data: np.ndarray | None
+    gap: bool = False
+    missed_messages: int = 0
+    beams: dict | None = field(default=None, repr=False)
+
+    def __getattr__(self, name):
+        # Header keys as attributes: frame.first_sample, frame.time_utc, ...
+        header = self.__dict__.get("header", {})
+        if name in header:
+            return header[name]
+        raise AttributeError(name)
+
+
+class Subscriber:
+    """Iterate over messages of a beamtap stream.
+
+    Parameters
+    ----------
+    endpoint : str
+        The service's ``[publish] endpoint``.
+    topics : sequence of str
+        Topics to receive (default: power, audio, status, beams).
+    timeout_s : float or None
+        :meth:`recv` waits at most this long (None: forever) and raises
+        ``TimeoutError``.
+    queue : int
+        Messages ZeroMQ may queue here before dropping (receive high-water mark).
+
+    Notes
+    -----
+    The subscriber keeps the latest ``beams`` table and attaches it to each
+    frame (``frame.beams``) once one has been seen.
+    """
+
+    def __init__(self, endpoint: str = DEFAULT_PUBLISH, topics=("power", "audio", "status", "beams"),
+                 timeout_s: float | None = 5.0, queue: int = 1000, context=None):
+        for t in topics:
+            if t not in protocol.TOPICS:
+                raise ValueError(f"topics: {t!r} is not one of {', '.join(protocol.TOPICS)}")
+        self.endpoint = endpoint
+        self.timeout_s = timeout_s
+        self._ctx = context or zmq.Context.instance()
+        self._sock = self._ctx.socket(zmq.SUB)
+        self._sock.setsockopt(zmq.RCVHWM, int(queue))
+        self._sock.setsockopt(zmq.LINGER, 0)
+        self._sock.connect(endpoint)
+        for t in topics:
+            self._sock.setsockopt(zmq.SUBSCRIBE, t.encode())
+        self._last_seq: dict = {}
+        self._next_first: dict = {}
+        self._stream = None
+        self.beams: dict | None = None
+        self.bad_messages = 0
+
+    def recv(self) -> Frame:
+        """The next frame; raises ``TimeoutError`` after ``timeout_s`` without one."""
+        while True:
+            if self.timeout_s is not None and not self._sock.poll(int(self.timeout_s * 1000)):
+                raise TimeoutError(f"no message from {self.endpoint} within {self.timeout_s:g} s "
+                                   f"(is a beamtap service publishing there?)")
+            try:
+                topic, header, data = protocol.decode(self._sock.recv_multipart(copy=False))
+            except protocol.ProtocolError:
+                self.bad_messages += 1
+                continue
+            return self._frame(topic, header, data)
+
+    def _frame(self, topic, header, data) -> Frame:
+        if header.get("stream") != self._stream:
+            # A new service run: sequence numbers start over.
+            restarted = self._stream is not None
+            self._stream = header.get("stream")
+            self._last_seq.clear()
+            self._next_first.clear()
+        else:
+            restarted = False
+        seq = header.get("seq", 0)
+        missed = 0
+        if topic in self._last_seq:
+            missed = max(0, seq - self._last_seq[topic] - 1)
+        self._last_seq[topic] = seq
+        gap = bool(header.get("gap")) or missed > 0 or restarted
+        if data is not None and topic in ("audio", "raw") and "first_sample" in header:
+            first = int(header["first_sample"])
+            if topic in self._next_first and first != self._next_first[topic]:
+                gap = True
+            self._next_first[topic] = first + len(data)
+        if topic == "beams":
+            self.beams = header
+        return Frame(topic, header, data, gap, missed, self.beams)
+
+    def __iter__(self):
+        while True:
+            yield self.recv()
+
+    def close(self) -> None:
+        self._sock.close(linger=0)
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+
+class ServiceError(RuntimeError):
+    """The service answered with an error, or did not answer."""
+
+
+class Controller:
+    """Send control requests to a beamtap service.
+
+    Parameters
+    ----------
+    endpoint : str
+        The service's ``[control] endpoint``.
+    timeout_s : float
+        How long to wait for each reply.
+
+    Examples
+    --------
+    >>> with Controller("tcp://127.0.0.1:5561") as ctl:     # doctest: +SKIP
+    ...     ctl.beams(set={"audio_deg": [[75.0, 0.0]]})
+    """
+
+    def __init__(self, endpoint: str = DEFAULT_CONTROL, timeout_s: float = 5.0, context=None):
+        self.endpoint = endpoint
+        self.timeout_s = timeout_s
+        self._ctx = context or zmq.Context.instance()
+        self._sock = None
+
+    def _socket(self):
+        if self._sock is None:
+            self._sock = self._ctx.socket(zmq.REQ)
+            self._sock.setsockopt(zmq.LINGER, 0)
+            self._sock.connect(self.endpoint)
+        return self._sock
+
+    def request(self, cmd: str, **kwargs) -> dict:
+        """Send ``{"cmd": cmd, **kwargs}``; returns the reply map (``ok`` is True).
+
+        Raises
+        ------
+        ServiceError
+            On an error reply or when no reply comes within ``timeout_s``.
+        """
+        sock = self._socket()
+        sock.send(protocol.pack({"cmd": cmd, **kwargs}))
+        if not sock.poll(int(self.timeout_s * 1000)):
+            # A REQ socket that lost its reply cannot be reused: start afresh next time.
+            sock.close(linger=0)
+            self._sock = None
+            raise ServiceError(f"no reply from {self.endpoint} within {self.timeout_s:g} s "
+                               f"(is a beamtap service listening there?)")
+        reply = protocol.unpack(sock.recv())
+        if not isinstance(reply, dict) or not reply.get("ok"):
+            raise ServiceError(reply.get("error", "malformed reply") if isinstance(reply, dict) else
+                               "malformed reply")
+        return reply
+
+    def ping(self) -> dict:
+        return self.request("ping")
+
+    def status(self) -> dict:
+        return self.request("status")["status"]
+
+    def config(self) -> dict:
+        return self.request("config")
+
+    def beams(self, set: dict | None = None) -> dict:  # noqa: A002 - the protocol's own word
+        return self.request("beams", set=set) if set is not None else self.request("beams")
+
+    def record(self, action: str, **kwargs) -> dict:
+        return self.request("record", action=action, **kwargs)["record"]
+
+    def mark(self, text: str) -> dict:
+        return self.request("mark", text=text)["mark"]
+
+    def close(self) -> None:
+        if self._sock is not None:
+            self._sock.close(linger=0)
+            self._sock = None
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
