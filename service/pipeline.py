@@ -63,6 +63,8 @@ class Pipeline:
         self.stopped = threading.Event()
         self._cpu_mark = (time.process_time(), time.monotonic())
         self._cpu_share = 0.0
+        self._next_gap_log = 0.0
+        self._gaps_unlogged = self._frames_unlogged = 0
 
     # ---- beam table ---------------------------------------------------
     def _beam_table(self, beams: BeamSet) -> dict:
@@ -163,8 +165,7 @@ class Pipeline:
             self.counts["frames_lost_seen"] += max(lost, 0)
             for k in self._gap_pending:
                 self._gap_pending[k] += max(lost, 1)
-            log.warning("gap: %d frames lost before sample %d; engine history restarted", lost,
-                        chunk.first_sample)
+            self._log_gap(lost, chunk.first_sample)
         result = self.engine.process(chunk.frames)
         self.counts["nan_samples"] += result.nan_count
         self.counts["clipped_samples"] += result.clip_count
@@ -184,6 +185,17 @@ class Pipeline:
         self.counts["blocks"] += 1
         self._durations[self._n_durations % len(self._durations)] = time.perf_counter() - t0
         self._n_durations += 1
+
+    def _log_gap(self, lost: int, first_sample: int) -> None:
+        # Every gap is counted; the log gets the first one and then a summary at most once a second.
+        now = time.monotonic()
+        self._gaps_unlogged += 1
+        self._frames_unlogged += max(lost, 0)
+        if now >= self._next_gap_log:
+            log.warning("gap: %d frames lost in %d gap(s), latest before sample %d; engine history restarted",
+                        self._frames_unlogged, self._gaps_unlogged, first_sample)
+            self._gaps_unlogged = self._frames_unlogged = 0
+            self._next_gap_log = now + 1.0
 
     def calibrated(self, frames: np.ndarray) -> np.ndarray:
         """Input channels with calibration gains applied (input channel layout)."""

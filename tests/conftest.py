@@ -41,3 +41,79 @@ def broadband_plane_wave(positions_m, c, fs, az_deg, source, el_deg=0.0, top=0.4
 @pytest.fixture
 def rng():
     return np.random.default_rng(20261202)
+
+
+# ---------------------------------------------------------------------------
+# Running the service the way a user does: a subprocess on loopback.
+# ---------------------------------------------------------------------------
+import contextlib  # noqa: E402
+import json  # noqa: E402
+import os  # noqa: E402
+import signal  # noqa: E402
+import subprocess  # noqa: E402
+import sys  # noqa: E402
+import time  # noqa: E402
+
+
+class RunningService:
+    def __init__(self, proc, endpoints, log_path):
+        self.proc, self.endpoints, self.log_path = proc, endpoints, log_path
+
+    @property
+    def publish(self):
+        return self.endpoints["publish"]
+
+    @property
+    def control(self):
+        return self.endpoints["control"]
+
+    def log(self):
+        return open(self.log_path).read()
+
+    def rss_kb(self) -> int:
+        for line in open(f"/proc/{self.proc.pid}/status"):
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1])
+        return 0
+
+
+@contextlib.contextmanager
+def running_service(tmp_path, config_text=None, extra_args=(), env=None, expect_rc=0, startup_s=60.0):
+    """Start ``beamtap serve`` on ephemeral loopback ports; SIGTERM it at the end.
+
+    Waits on the service's ready file (written once its sockets are bound),
+    never on a fixed sleep.
+    """
+    args = [sys.executable, "-m", "beamtap", "serve", "--publish", "tcp://127.0.0.1:*",
+            "--control", "tcp://127.0.0.1:*"]
+    if config_text is not None:
+        cfg = tmp_path / "service.toml"
+        cfg.write_text(config_text)
+        args += ["--config", str(cfg)]
+    ready = tmp_path / f"ready-{time.monotonic_ns()}.json"
+    log_path = tmp_path / f"service-{time.monotonic_ns()}.log"
+    args += ["--ready-file", str(ready), *extra_args]
+    full_env = dict(os.environ, **(env or {}))
+    with open(log_path, "w") as log:
+        proc = subprocess.Popen(args, stdout=log, stderr=subprocess.STDOUT, env=full_env)
+    deadline = time.monotonic() + startup_s
+    while not ready.exists():
+        if proc.poll() is not None:
+            raise AssertionError(f"service exited with {proc.returncode}:\n{open(log_path).read()}")
+        if time.monotonic() > deadline:
+            proc.kill()
+            raise AssertionError(f"service not ready in {startup_s} s:\n{open(log_path).read()}")
+        time.sleep(0.05)  # polling for the ready file, not standing in for synchronisation
+    service = RunningService(proc, json.loads(ready.read_text()), log_path)
+    try:
+        yield service
+    finally:
+        if proc.poll() is None:
+            proc.send_signal(signal.SIGTERM)
+            try:
+                proc.wait(timeout=10)
+            except subprocess.TimeoutExpired:
+                proc.kill()
+                proc.wait()
+    if expect_rc is not None:
+        assert proc.returncode == expect_rc, open(log_path).read()

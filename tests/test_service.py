@@ -1,0 +1,216 @@
+"""The live service as a subprocess, with real ZeroMQ sockets on loopback."""
+
+import time
+
+import msgpack
+import numpy as np
+import pytest
+import zmq
+
+from beamtap.client import Controller, ServiceError, Subscriber
+from beamtap.client.protocol import pack, unpack
+
+from conftest import running_service
+
+FS = 48000
+CHIRP = dict(f0=400.0, f1=1400.0, period=0.5, level_db=-20.0)
+LINE = """
+[array]
+line = {{ count = 16, spacing_m = 0.5 }}
+[medium]
+sound_speed_mps = 1500.0
+[input]
+source = "simulated"
+samplerate_hz = 48000
+block_frames = 1024
+scene_noise_db = -50.0
+[[input.scene]]
+azimuth_deg = 63.0
+signal = "chirp"
+band_hz = [{f0}, {f1}]
+period_s = {period}
+level_db = {level_db}
+[beams]
+fan = {{ from_deg = 0.0, to_deg = 180.0, step_deg = 1.0 }}
+band_hz = [400.0, 1400.0]
+audio_deg = [[63.0, 0.0], [120.0, 0.0]]
+{extra}
+"""
+
+
+def line_config(extra=""):
+    return LINE.format(extra=extra, **CHIRP)
+
+
+def chirp(t):
+    """The scene's chirp in closed form (the simulated source's definition)."""
+    amp = np.sqrt(2) * 10 ** (CHIRP["level_db"] / 20)
+    tp = np.mod(t, CHIRP["period"])
+    return amp * np.sin(2 * np.pi * (CHIRP["f0"] * tp + 0.5 * (CHIRP["f1"] - CHIRP["f0"]) / CHIRP["period"] * tp**2))
+
+
+def collect(sub, want, topics=("power", "audio")):
+    got = {t: [] for t in topics}
+    while min(len(got[t]) for t in topics) < want:
+        f = sub.recv()
+        if f.topic in got:
+            got[f.topic].append(f)
+    return got
+
+
+@pytest.fixture(scope="module")
+def line_service(tmp_path_factory):
+    with running_service(tmp_path_factory.mktemp("line"), line_config()) as svc:
+        yield svc
+
+
+def test_stream_is_contiguous_points_at_the_source_and_carries_it(line_service):
+    with Subscriber(line_service.publish, topics=["power", "audio", "beams"], timeout_s=10) as sub:
+        got = collect(sub, 210)
+    power, audio = got["power"][:210], got["audio"][:210]
+    for frames in (power, audio):
+        seq = np.array([f.seq for f in frames])
+        first = np.array([f.first_sample for f in frames])
+        assert np.all(np.diff(seq) == 1)
+        assert np.all(np.diff(first) == 1024)
+        assert not any(f.gap for f in frames[1:])
+        assert len({f.stream for f in frames}) == 1
+    d = audio[0].bulk_delay_samples
+    assert all(f.bulk_delay_samples == d and f.samplerate_hz == FS for f in audio)
+    # Strongest beam: the source's bearing.
+    beams = power[-1].beams
+    mean_power = 10 * np.log10(np.mean([10 ** (f.data[0] / 10) for f in power[5:]], axis=0))
+    assert beams["power_deg"][int(np.argmax(mean_power))][0] == pytest.approx(63.0, abs=1.0)
+    # The audio beam toward the source carries its signal, delayed by D.
+    y = np.concatenate([f.data[:, 0] for f in audio[5:]])
+    n = audio[5].first_sample + np.arange(len(y))
+    want = chirp((n - d) / FS)
+    r = np.corrcoef(y, want)[0, 1]
+    assert r >= 0.95
+    # time_utc follows the sample count
+    t = np.array([f.time_utc for f in audio])
+    assert np.allclose(np.diff(t), 1024 / FS, atol=1e-6)
+
+
+def test_retarget_changes_the_beam_table_and_nothing_else(line_service):
+    with Subscriber(line_service.publish, topics=["power", "audio"], timeout_s=10) as sub, \
+            Controller(line_service.control) as ctl:
+        before = collect(sub, 5)
+        old_table = before["power"][-1].beam_table
+        reply = ctl.beams(set={"fan": {"from_deg": 0.0, "to_deg": 180.0, "step_deg": 2.0}})
+        assert reply["beam_table"] == old_table + 1
+        after = collect(sub, 40)
+    power = before["power"] + after["power"]
+    audio = before["audio"] + after["audio"]
+    assert np.all(np.diff([f.seq for f in power]) == 1) and np.all(np.diff([f.first_sample for f in power]) == 1024)
+    assert np.all(np.diff([f.seq for f in audio]) == 1) and np.all(np.diff([f.first_sample for f in audio]) == 1024)
+    tables = [f.beam_table for f in power]
+    switch = tables.index(old_table + 1)
+    assert set(tables[:switch]) == {old_table} and set(tables[switch:]) == {old_table + 1}
+    assert {f.data.shape for f in power[:switch]} == {(1, 181)}
+    assert {f.data.shape for f in power[switch:]} == {(1, 91)}
+    assert {f.data.shape for f in audio} == {(1024, 2)}
+    assert not any(f.gap for f in power + audio)
+    with Controller(line_service.control) as ctl:
+        assert len(ctl.beams()["beams"]["directions_deg"]) == 91
+        ctl.beams(set={"fan": {"from_deg": 0.0, "to_deg": 180.0, "step_deg": 1.0}})
+
+
+BAD_REQUESTS = [
+    ([b"\xc1\xc1 not msgpack"], "not a msgpack"),
+    ([pack([1, 2, 3])], "must be a map"),
+    ([pack({"cmd": 5})], "'cmd' must be a string"),
+    ([pack({"command": "ping"})], "'cmd' must be a string"),
+    ([pack({"cmd": "fly"})], "unknown cmd 'fly'"),
+    ([pack({"cmd": "beams", "set": {"shading": "kaiser"}})], "set.shading"),
+    ([pack({"cmd": "beams", "set": {"band_hz": [1400.0, 300.0]}})], "set.band_hz"),
+    ([pack({"cmd": "beams", "set": {"fan": {"from_deg": 0, "to_deg": 180, "step_deg": "two"}}})], "set.fan.step_deg"),
+    ([pack({"cmd": "beams", "set": {"audio_deg": [[1e9, 0.0]]}})], "set.audio_deg"),
+    ([pack({"cmd": "beams", "set": []})], "'set' must be a non-empty map"),
+    ([pack({"cmd": "beams", "set": {"colour": "red"}})], "unknown key"),
+    ([pack({"cmd": "ping", "pad": "x" * 70000})], "larger than the limit"),
+    ([pack({"cmd": "ping"}), b"second frame"], "one msgpack frame"),
+    ([pack({"cmd": "mark", "text": 12})], "mark needs 'text'"),
+]
+
+
+def test_bad_control_requests_get_error_replies_and_publishing_goes_on(line_service):
+    ctx = zmq.Context.instance()
+    with Subscriber(line_service.publish, topics=["power"], timeout_s=10) as sub:
+        first_seq = sub.recv().seq
+        with ctx.socket(zmq.REQ) as req:
+            req.setsockopt(zmq.LINGER, 0)
+            req.connect(line_service.control)
+            for frames, words in BAD_REQUESTS:
+                req.send_multipart(frames)
+                assert req.poll(10000), f"no reply to {frames[0][:20]!r}"
+                reply = unpack(req.recv())
+                assert reply["ok"] is False, reply
+                assert words in reply["error"], reply["error"]
+                assert "\n" not in reply["error"]
+            req.send(pack({"cmd": "ping"}))
+            assert req.poll(10000) and unpack(req.recv())["ok"] is True
+        later = [sub.recv() for _ in range(5)]
+    assert later[-1].seq > first_seq
+    assert np.all(np.diff([f.seq for f in later]) == 1)
+    with Controller(line_service.control) as ctl:
+        st = ctl.status()
+        assert st["state"] == "running" and st["gaps"] == 0
+        assert len(ctl.beams()["beams"]["directions_deg"]) == 181  # nothing changed half-way
+        with pytest.raises(ServiceError, match="unknown cmd"):
+            ctl.request("reboot")
+
+
+def test_stalled_subscriber_does_not_slow_others_or_grow_memory(line_service):
+    ctx = zmq.Context.instance()
+    stalled = ctx.socket(zmq.SUB)
+    stalled.setsockopt(zmq.RCVHWM, 4)
+    stalled.setsockopt(zmq.RCVBUF, 4096)
+    stalled.setsockopt(zmq.LINGER, 0)
+    stalled.connect(line_service.publish)
+    stalled.setsockopt(zmq.SUBSCRIBE, b"")
+    try:
+        with Subscriber(line_service.publish, topics=["audio"], timeout_s=10) as sub:
+            warm = [sub.recv() for _ in range(50)]
+            rss_a = line_service.rss_kb()
+            frames = [sub.recv() for _ in range(200)]
+            rss_b = line_service.rss_kb()
+        seq = [f.seq for f in warm + frames]
+        assert np.all(np.diff(seq) == 1)  # the reader loses nothing
+        # 200 blocks arrive at the source's pace: 200 × 21.3 ms, not slower
+        span = frames[-1].published_utc - frames[0].published_utc
+        assert span == pytest.approx(199 * 1024 / FS, rel=0.1)
+        # bounded: the stalled peer's queue is capped by the send high-water mark
+        assert rss_b - rss_a < 30_000, (rss_a, rss_b)
+    finally:
+        stalled.close()
+
+
+def test_sigterm_stops_within_two_seconds_with_status_zero(tmp_path):
+    with running_service(tmp_path, line_config()) as svc:
+        with Subscriber(svc.publish, topics=["power"], timeout_s=10) as sub:
+            sub.recv()
+        t0 = time.monotonic()
+        svc.proc.terminate()
+        rc = svc.proc.wait(timeout=10)
+        elapsed = time.monotonic() - t0
+    assert rc == 0 and elapsed < 2.0
+    assert "stopped" in svc.log()
+
+
+def test_serve_without_config_runs_the_builtin_demo(tmp_path):
+    with running_service(tmp_path) as svc:
+        with Subscriber(svc.publish, topics=["power", "beams"], timeout_s=10) as sub:
+            got = collect(sub, 3, topics=("power",))
+        first_line = svc.log().splitlines()[0]
+    assert "built-in demo scene" in first_line
+    assert got["power"][0].data.shape == (1, 91)
+
+
+def test_status_topic_reports_counters(line_service):
+    with Subscriber(line_service.publish, topics=["status"], timeout_s=10) as sub:
+        st = sub.recv().header
+    for key in ("frames_captured", "overflows", "gaps", "frames_lost", "nan_samples", "clipped_samples",
+                "block_ms_p50", "block_ms_p99", "cpu_share", "messages_dropped", "beam_table"):
+        assert key in st
+    assert st["frames_captured"] > 0 and st["block_ms_p50"] > 0
