@@ -78,13 +78,14 @@ class RunningService:
 
 
 @contextlib.contextmanager
-def running_service(tmp_path, config_text=None, extra_args=(), env=None, expect_rc=0, startup_s=60.0):
+def running_service(tmp_path, config_text=None, extra_args=(), env=None, expect_rc=0, startup_s=60.0,
+                    publish="tcp://127.0.0.1:*"):
     """Start ``beamtap serve`` on ephemeral loopback ports; SIGTERM it at the end.
 
     Waits on the service's ready file (written once its sockets are bound),
     never on a fixed sleep.
     """
-    args = [sys.executable, "-m", "beamtap", "serve", "--publish", "tcp://127.0.0.1:*",
+    args = [sys.executable, "-m", "beamtap", "serve", "--publish", publish,
             "--control", "tcp://127.0.0.1:*"]
     if config_text is not None:
         cfg = tmp_path / "service.toml"
