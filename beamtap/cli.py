@@ -6,11 +6,19 @@ is quick and commands that do not touch a sound card work without PortAudio.
 
 from __future__ import annotations
 
-import argparse
-import sys
+import os
 
-from beamtap import __version__
-from beamtap.errors import UsageError
+# One BLAS thread: the engine runs in one processing thread, and idle BLAS
+# worker threads spin (a whole core each) between the small products of a
+# real-time block loop. Must be set before numpy is first imported.
+for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")
+
+import argparse  # noqa: E402
+import sys  # noqa: E402
+
+from beamtap import __version__  # noqa: E402
+from beamtap.errors import UsageError  # noqa: E402
 
 BUILTIN = "builtin:demo"
 
@@ -101,6 +109,37 @@ def cmd_devices(args):
     print("(* default input; [input] device takes the name or the index)")
 
 
+def cmd_tail(args):
+    from beamtap.client import tail  # noqa: PLC0415
+
+    return _client_call(lambda: tail.run(args.endpoint, args.topics, args.count, args.timeout))
+
+
+def cmd_watch(args):
+    from beamtap.client import watch  # noqa: PLC0415
+
+    return watch.run(args.endpoint, args.rate, args.band, args.range_db, args.ascii, args.seconds)
+
+
+def cmd_ctl(args):
+    from beamtap.client import ctl  # noqa: PLC0415
+
+    return ctl.run(args)
+
+
+def cmd_demo(args):
+    from beamtap.client import demo  # noqa: PLC0415
+
+    return demo.run(args.rate, args.ascii, args.seconds)
+
+
+def _client_call(fn):
+    try:
+        return fn()
+    except TimeoutError as exc:
+        raise UsageError(str(exc)) from None
+
+
 COMMANDS = {}
 
 
@@ -146,6 +185,48 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--log-level", default="INFO", choices=["DEBUG", "INFO", "WARNING", "ERROR"])
 
     _add(sub, "devices", cmd_devices, "list sound cards with their input channels and default sample rates")
+
+    from beamtap.client.subscriber import DEFAULT_CONTROL, DEFAULT_PUBLISH  # noqa: PLC0415
+
+    p = _add(sub, "tail", cmd_tail, "print one line per stream message (topic, seq, first_sample, UTC, shape, gap)")
+    p.add_argument("--endpoint", default=DEFAULT_PUBLISH, help=f"service stream (default {DEFAULT_PUBLISH})")
+    p.add_argument("--topics", nargs="+", default=["power", "audio", "raw", "status", "beams"],
+                   choices=["power", "audio", "raw", "status", "beams"])
+    p.add_argument("--count", type=int, default=None, help="stop after this many messages")
+    p.add_argument("--timeout", type=float, default=10.0, help="seconds to wait for a message (default 10)")
+
+    p = _add(sub, "watch", cmd_watch, "live terminal view: power across the fan, peak bearing, waterfall, status")
+    p.add_argument("--endpoint", default=DEFAULT_PUBLISH, help=f"service stream (default {DEFAULT_PUBLISH})")
+    p.add_argument("--rate", type=float, default=8.0, help="redraws (and waterfall rows) per second (default 8)")
+    p.add_argument("--band", type=int, default=0, help="which power band to show (0-based, default 0)")
+    p.add_argument("--range-db", type=float, default=30.0, help="dynamic range shown, dB (default 30)")
+    p.add_argument("--ascii", action="store_true", help="plain characters, no colour")
+    p.add_argument("--seconds", type=float, default=None, help="quit after this many seconds")
+
+    p = _add(sub, "ctl", cmd_ctl, "control a running service: status, config, beams, record, mark")
+    p.add_argument("--control", default=DEFAULT_CONTROL, help=f"service control socket (default {DEFAULT_CONTROL})")
+    p.add_argument("--timeout", type=float, default=5.0, help="seconds to wait for a reply (default 5)")
+    p.add_argument("--json", action="store_true", help="print the reply as JSON")
+    csub = p.add_subparsers(dest="what", metavar="WHAT", required=True, parser_class=_Parser)
+    csub.add_parser("status", help="counters: overflows, gaps, frames lost, block time, CPU, drops")
+    csub.add_parser("config", help="the running config as TOML")
+    b = csub.add_parser("beams", help="show the beams, or change them (takes effect at the next block)")
+    b.add_argument("--fan", metavar="FROM,TO,STEP", help="power fan in degrees")
+    b.add_argument("--audio", nargs="+", metavar="AZ[,EL]", help="audio beam directions")
+    b.add_argument("--shading", choices=["uniform", "hann", "hamming", "chebyshev", "taylor"])
+    b.add_argument("--band", metavar="LOW,HIGH", help="power band in Hz")
+    b.add_argument("--set-json", metavar="JSON", help="any [beams] keys as a JSON object")
+    r = csub.add_parser("record", help="start, stop or show recording")
+    r.add_argument("action", choices=["start", "stop", "status"])
+    r.add_argument("--what", dest="kinds", nargs="+", choices=["raw", "audio", "power"], help="what to record")
+    r.add_argument("--label", default=None, help="a label for the session")
+    m = csub.add_parser("mark", help="add an event mark to the recording")
+    m.add_argument("text", nargs="+", help="the mark's text")
+
+    p = _add(sub, "demo", cmd_demo, "the built-in demo: start the service and the live view together")
+    p.add_argument("--rate", type=float, default=8.0, help="redraws per second (default 8)")
+    p.add_argument("--ascii", action="store_true", help="plain characters, no colour")
+    p.add_argument("--seconds", type=float, default=None, help="quit after this many seconds")
     return parser
 
 

@@ -103,6 +103,11 @@ class Subscriber:
         self.beams: dict | None = None
         self.bad_messages = 0
 
+    @property
+    def socket(self) -> zmq.Socket:
+        """The underlying SUB socket (for polling it beside other inputs)."""
+        return self._sock
+
     def recv(self) -> Frame:
         """The next frame; raises ``TimeoutError`` after ``timeout_s`` without one."""
         while True:
