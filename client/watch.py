@@ -75,7 +75,7 @@ class View:
             lines.append("waiting for power and the beam table …")
             lines += [""] * max(0, height - 3)
             lines.append(status_line[:width])
-            return _screen(lines, height)
+            return _screen([self._plain(line) for line in lines], height)
         cols = self._columns(len(latest_db), plot_w)
         top = float(np.max(latest_db))
         frac = self._level(latest_db[cols], top)
@@ -114,7 +114,13 @@ class View:
         while len(lines) < height - 1:
             lines.append("")
         lines.append(status_line[:width])
-        return _screen(lines, height)
+        return _screen([self._plain(line) for line in lines], height)
+
+    def _plain(self, line: str) -> str:
+        """The line in plain ASCII when the terminal cannot show more."""
+        if self.unicode:
+            return line
+        return line.replace("°", "d").replace("…", "...").encode("ascii", "replace").decode("ascii")
 
 
 def _axis(az: np.ndarray, width: int) -> str:

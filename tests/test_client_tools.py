@@ -1,0 +1,163 @@
+"""The everyday client commands against a live service subprocess."""
+
+import json
+import os
+import pty
+import re
+import select
+import subprocess
+import sys
+import termios
+import time
+
+import numpy as np
+import pytest
+
+from beamtap.client import Controller
+from beamtap.client.tail import format_line
+
+from conftest import running_service
+
+SCENE = """
+[array]
+line = { count = 16, spacing_m = 0.5 }
+[medium]
+sound_speed_mps = 1500.0
+[input]
+source = "simulated"
+samplerate_hz = 48000
+block_frames = 1024
+scene_noise_db = -50.0
+[[input.scene]]
+azimuth_deg = 52.0
+signal = "noise"
+band_hz = [300.0, 1400.0]
+level_db = -20.0
+[beams]
+fan = { from_deg = 0.0, to_deg = 180.0, step_deg = 2.0 }
+band_hz = [300.0, 1400.0]
+audio_deg = [[52.0, 0.0], [140.0, 0.0]]
+"""
+
+
+@pytest.fixture(scope="module")
+def svc(tmp_path_factory):
+    with running_service(tmp_path_factory.mktemp("tools"), SCENE) as s:
+        yield s
+
+
+def beamtap(*args, **kw):
+    return subprocess.run([sys.executable, "-m", "beamtap", *args], capture_output=True, text=True, timeout=120, **kw)
+
+
+def test_tail_prints_one_line_per_message(svc):
+    r = beamtap("tail", "--endpoint", svc.publish, "--topics", "power", "audio", "--count", "12")
+    assert r.returncode == 0, r.stderr
+    lines = r.stdout.strip().splitlines()
+    assert len(lines) == 12
+    pat = re.compile(r"^(power|audio)\s+seq=\d+\s+first_sample=\d+\s+\d{4}-\d\d-\d\dT[\d:.]+Z shape=\S+\s+ok")
+    assert all(pat.match(line) for line in lines), lines
+
+
+def test_tail_says_when_no_service_answers():
+    r = beamtap("tail", "--endpoint", "tcp://127.0.0.1:9", "--count", "1", "--timeout", "0.5")
+    assert r.returncode == 2 and "no message" in r.stderr and "Traceback" not in r.stderr
+
+
+def test_ctl_retargets_and_reads_back(svc):
+    r = beamtap("ctl", "--control", svc.control, "beams", "--audio", "75", "100,0", "--fan", "0,180,3")
+    assert r.returncode == 0, r.stderr
+    assert "61 power beams" in r.stdout
+    r = beamtap("ctl", "--control", svc.control, "--json", "beams")
+    got = json.loads(r.stdout)
+    assert got["beams"]["audio_deg"] == [[75.0, 0.0], [100.0, 0.0]]
+    assert len(got["beams"]["directions_deg"]) == 61
+    r = beamtap("ctl", "--control", svc.control, "status")
+    assert r.returncode == 0 and "gaps" in r.stdout and "block_ms_p99" in r.stdout
+    r = beamtap("ctl", "--control", svc.control, "config")
+    assert r.returncode == 0 and "[array]" in r.stdout and "directions_deg" in r.stdout
+    r = beamtap("ctl", "--control", svc.control, "beams", "--shading", "kaiser")
+    assert r.returncode == 2
+    r = beamtap("ctl", "--control", svc.control, "beams", "--set-json", '{"band_hz": [2000, 100]}')
+    assert r.returncode == 2 and "band_hz" in r.stderr and r.stderr.count("\n") == 1
+    with Controller(svc.control) as ctl:  # put the fan back for the other tests
+        ctl.beams(set={"fan": {"from_deg": 0.0, "to_deg": 180.0, "step_deg": 2.0}, "audio_deg": [[52.0, 0.0]]})
+
+
+def test_ctl_without_service_is_a_clear_error():
+    r = beamtap("ctl", "--control", "tcp://127.0.0.1:9", "--timeout", "0.5", "status")
+    assert r.returncode == 2 and "no reply" in r.stderr
+
+
+def _read_pty(fd, seconds):
+    out = b""
+    end = time.monotonic() + seconds
+    while time.monotonic() < end:
+        r, _, _ = select.select([fd], [], [], 0.1)
+        if r:
+            try:
+                chunk = os.read(fd, 65536)
+            except OSError:
+                break
+            if not chunk:
+                break
+            out += chunk
+    return out
+
+
+def test_watch_in_a_pseudo_terminal_marks_the_peak_and_restores_the_terminal(svc):
+    master, slave = pty.openpty()
+    os.set_blocking(master, False)
+    # a 120 × 40 terminal
+    import fcntl
+    import struct
+
+    fcntl.ioctl(slave, termios.TIOCSWINSZ, struct.pack("HHHH", 40, 120, 0, 0))
+    before = termios.tcgetattr(slave)
+    env = dict(os.environ, TERM="xterm-256color", PYTHONIOENCODING="utf-8")
+    proc = subprocess.Popen([sys.executable, "-m", "beamtap", "watch", "--endpoint", svc.publish, "--rate", "10"],
+                            stdin=slave, stdout=slave, stderr=slave, env=env, close_fds=True)
+    try:
+        out = _read_pty(master, 5.0)
+        os.write(master, b"q")
+        end = time.monotonic() + 10
+        while proc.poll() is None and time.monotonic() < end:
+            out += _read_pty(master, 0.2)  # keep draining, or the view blocks writing
+        rc = proc.wait(timeout=1)
+        out += _read_pty(master, 0.3)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    after = termios.tcgetattr(slave)
+    os.close(slave)
+    os.close(master)
+    assert rc == 0
+    text = out.decode("utf-8", "replace")
+    peaks = [float(m) for m in re.findall(r"peak (-?\d+\.\d)°", text)]
+    assert len(peaks) >= 5
+    assert np.median(peaks[-5:]) == pytest.approx(52.0, abs=2.0)
+    assert "waterfall" in text and "gaps 0" in text
+    assert "\x1b[48;5;" in text  # colour cells on a colour terminal
+    assert text.rstrip().endswith("\x1b[?1049l") or "\x1b[?1049l" in text[-200:]  # main screen back
+    assert "\x1b[?25h" in text[-200:]  # cursor shown again
+    assert after == before  # terminal modes restored
+
+
+def test_watch_falls_back_to_plain_characters(svc):
+    master, slave = pty.openpty()
+    os.set_blocking(master, False)
+    env = dict(os.environ, TERM="dumb", PYTHONIOENCODING="ascii")
+    proc = subprocess.Popen([sys.executable, "-m", "beamtap", "watch", "--endpoint", svc.publish, "--seconds", "3"],
+                            stdin=slave, stdout=slave, stderr=slave, env=env, close_fds=True)
+    out = b""
+    end = time.monotonic() + 15
+    while proc.poll() is None and time.monotonic() < end:
+        out += _read_pty(master, 0.2)
+    rc = proc.wait(timeout=1)
+    os.close(slave)
+    os.close(master)
+    assert rc == 0
+    text = out.decode("ascii", "replace")
+    assert "\x1b[48;5;" not in text and "#" in text
+    peaks = [float(m) for m in re.findall(r"peak (-?\d+\.\d)d", text)]
+    assert peaks and np.median(peaks) == pytest.approx(52.0, abs=2.0)
