@@ -133,6 +133,14 @@ def cmd_demo(args):
     return demo.run(args.rate, args.ascii, args.seconds)
 
 
+def cmd_listen(args):
+    from beamtap.client import listen  # noqa: PLC0415
+
+    device = int(args.device) if args.device is not None and args.device.isdigit() else args.device
+    return listen.run(args.endpoint, args.control, args.beam, args.look, device, args.gain_db, args.limit_db,
+                      args.buffer_ms, args.seconds)
+
+
 def _client_call(fn):
     try:
         return fn()
@@ -222,6 +230,18 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--label", default=None, help="a label for the session")
     m = csub.add_parser("mark", help="add an event mark to the recording")
     m.add_argument("text", nargs="+", help="the mark's text")
+
+    p = _add(sub, "listen", cmd_listen, "play one audio beam to an output device (starts quiet, hard-limited)")
+    p.add_argument("--endpoint", default=DEFAULT_PUBLISH, help=f"service stream (default {DEFAULT_PUBLISH})")
+    p.add_argument("--control", default=DEFAULT_CONTROL, help="control socket, for --look")
+    p.add_argument("--beam", type=int, default=0, help="audio beam index, 0-based (default 0)")
+    p.add_argument("--look", type=_look, default=None, metavar="AZ[,EL]",
+                   help="first point audio beam --beam toward this direction (through the control socket)")
+    p.add_argument("--device", default=None, help="output device name or index (default: system default)")
+    p.add_argument("--gain-db", type=float, default=-20.0, help="playback gain, dB (default -20: start low)")
+    p.add_argument("--limit-db", type=float, default=-6.0, help="hard limit, dB re full scale (default -6)")
+    p.add_argument("--buffer-ms", type=float, default=100.0, help="jitter buffer, ms (default 100)")
+    p.add_argument("--seconds", type=float, default=None, help="stop after this many seconds")
 
     p = _add(sub, "demo", cmd_demo, "the built-in demo: start the service and the live view together")
     p.add_argument("--rate", type=float, default=8.0, help="redraws per second (default 8)")

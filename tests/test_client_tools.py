@@ -161,3 +161,34 @@ def test_watch_falls_back_to_plain_characters(svc):
     assert "\x1b[48;5;" not in text and "#" in text
     peaks = [float(m) for m in re.findall(r"peak (-?\d+\.\d)d", text)]
     assert peaks and np.median(peaks) == pytest.approx(52.0, abs=2.0)
+
+
+def test_listen_plays_to_a_virtual_alsa_output(svc, tmp_path):
+    home = tmp_path / "home"
+    home.mkdir()
+    (home / ".asoundrc").write_text(
+        "pcm.nullout {\n type plug\n slave { pcm { type null } format FLOAT_LE rate 48000 channels 1 }\n}\n")
+    r = beamtap("listen", "--endpoint", svc.publish, "--control", svc.control, "--beam", "0", "--look", "60",
+                "--device", "nullout", "--seconds", "3", env=dict(os.environ, HOME=str(home)))
+    assert r.returncode == 0, r.stderr
+    assert "CAUTION" in r.stderr and "loud" in r.stderr
+    m = re.search(r"played ([\d.]+) s of beam 0", r.stdout)
+    assert m and float(m.group(1)) > 0.5, r.stdout
+    with Controller(svc.control) as ctl:
+        assert ctl.beams()["beams"]["audio_deg"][0] == [60.0, 0.0]
+        ctl.beams(set={"audio_deg": [[52.0, 0.0]]})
+
+
+def test_limiter_and_jitter_buffer():
+    from beamtap.client.listen import JitterBuffer, Limiter
+
+    lim = Limiter(gain_db=0.0, limit_db=-6.0, fade_frames=100)
+    y = lim(np.ones(1000, np.float32))
+    assert np.max(np.abs(y)) <= 10 ** (-6 / 20) + 1e-7
+    assert y[0] < 0.02 and lim.limited > 0  # fades in, then limits
+    jb = JitterBuffer(target_frames=300, max_frames=1000)
+    out = np.empty(256, np.float32)
+    assert jb.take(out) == 0  # not started before the target is queued
+    jb.put(np.arange(400, dtype=np.float32))
+    assert jb.take(out) == 256 and out[0] == 0 and out[-1] == 255
+    assert jb.take(out) == 144 and jb.underruns == 1
