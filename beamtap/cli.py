@@ -141,6 +141,21 @@ def cmd_listen(args):
                       args.buffer_ms, args.seconds)
 
 
+def cmd_picture(args):
+    from beamtap.client import picture  # noqa: PLC0415
+
+    if args.live == (args.power_csv is not None):
+        raise UsageError("give either POWER.csv or --live (not both, not neither)")
+    if args.live:
+        if not args.seconds or args.seconds <= 0:
+            raise UsageError("--live needs --seconds S (a positive number)")
+        data = picture.from_live(args.endpoint, args.seconds, args.band)
+    else:
+        data = picture.from_csv(args.power_csv, args.band)
+    picture.render(*data, args.out, args.range_db)
+    print(f"wrote {args.out}: {len(data[2])} rows x {len(data[1])} bearings")
+
+
 def _client_call(fn):
     try:
         return fn()
@@ -242,6 +257,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--limit-db", type=float, default=-6.0, help="hard limit, dB re full scale (default -6)")
     p.add_argument("--buffer-ms", type=float, default=100.0, help="jitter buffer, ms (default 100)")
     p.add_argument("--seconds", type=float, default=None, help="stop after this many seconds")
+
+    p = _add(sub, "picture", cmd_picture, "bearing-against-time image (PNG) from power.csv or a live capture")
+    p.add_argument("power_csv", nargs="?", default=None, help="power.csv written by 'beamtap process'")
+    p.add_argument("--live", action="store_true", help="capture from a running service instead")
+    p.add_argument("--seconds", type=float, default=None, help="with --live: how long to capture")
+    p.add_argument("--endpoint", default=DEFAULT_PUBLISH, help=f"with --live: service stream (default {DEFAULT_PUBLISH})")
+    p.add_argument("--band", type=int, default=0, help="which band (0-based)")
+    p.add_argument("--range-db", type=float, default=30.0, help="colour range below the maximum, dB")
+    p.add_argument("--out", required=True, help="output PNG")
 
     p = _add(sub, "demo", cmd_demo, "the built-in demo: start the service and the live view together")
     p.add_argument("--rate", type=float, default=8.0, help="redraws per second (default 8)")

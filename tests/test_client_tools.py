@@ -192,3 +192,37 @@ def test_limiter_and_jitter_buffer():
     jb.put(np.arange(400, dtype=np.float32))
     assert jb.take(out) == 256 and out[0] == 0 and out[-1] == 255
     assert jb.take(out) == 144 and jb.underruns == 1
+
+
+def _brightest_bearing(png):
+    from PIL import Image
+
+    im = Image.open(png)
+    info = json.loads(im.info["Description"])
+    x0, y0, x1, y1 = (int(round(v)) for v in info["axes_px"])
+    rgb = np.asarray(im.convert("RGB"), float)[y0 + 2:y1 - 2, x0 + 2:x1 - 2]
+    luminance = rgb @ np.array([0.2126, 0.7152, 0.0722])  # viridis: brightness rises with power
+    col = int(np.argmax(luminance.mean(axis=0)))
+    b0, b1 = info["bearing_deg"]
+    return b0 + (col + 0.5) / luminance.shape[1] * (b1 - b0)
+
+
+def test_picture_from_process_output_has_its_ridge_at_the_source(tmp_path):
+    cfg = tmp_path / "scene.toml"
+    cfg.write_text(SCENE.replace("block_frames = 1024", "block_frames = 2048"))
+    wav, out = tmp_path / "s.wav", tmp_path / "out"
+    assert beamtap("simulate", str(cfg), "--seconds", "4", "--out", str(wav)).returncode == 0
+    assert beamtap("process", str(cfg), str(wav), "--out", str(out)).returncode == 0
+    png = tmp_path / "p.png"
+    r = beamtap("picture", str(out / "power.csv"), "--out", str(png))
+    assert r.returncode == 0, r.stderr
+    assert _brightest_bearing(png) == pytest.approx(52.0, abs=3.0)
+
+
+def test_picture_live(svc, tmp_path):
+    png = tmp_path / "live.png"
+    r = beamtap("picture", "--live", "--seconds", "2", "--endpoint", svc.publish, "--out", str(png))
+    assert r.returncode == 0, r.stderr
+    assert _brightest_bearing(png) == pytest.approx(52.0, abs=3.0)
+    r = beamtap("picture", "--out", str(png))
+    assert r.returncode == 2 and "--live" in r.stderr

@@ -3,7 +3,8 @@
 Definition (what ``power`` means everywhere in beamtap): for each band, the
 beam output ``y`` is filtered by a causal linear-phase FIR band-pass ``g``
 (scipy.signal.firwin with a Kaiser window designed for 80 dB stop-band
-attenuation), and the band power of a power block is the mean of
+attenuation, its -6 dB points at the band edges, each transition centred
+on its edge), and the band power of a power block is the mean of
 ``(g * y)[n]**2`` over the block's samples, reported as
 ``10*log10(mean)`` dB re full scale (a full-scale sine, amplitude 1, in the
 band reads -3.01 dB). The filter's effective noise bandwidth
@@ -69,12 +70,13 @@ def default_transition_hz(band_hz, samplerate_hz: float) -> float:
     """Transition width used when the config gives none.
 
     Half the band width, but never more than the room below the lower edge
-    or above the upper edge, and at least fs/1000 (common practice:
-    narrower transitions cost filter length, frame length and latency).
+    or above the upper edge (each transition is centred on its edge), and
+    at least fs/1000 where the room allows (common practice: narrower
+    transitions cost filter length, frame length and latency).
     """
     low, high = band_hz
-    room = min(low, samplerate_hz / 2.0 - high)
-    return float(max(min(0.5 * (high - low), room), samplerate_hz / 1000.0))
+    room = 1.9 * min(low, samplerate_hz / 2.0 - high)
+    return float(min(max(0.5 * (high - low), samplerate_hz / 1000.0), room))
 
 
 def design_band_filter(band_hz, samplerate_hz: float, transition_hz: float | None = None) -> BandFilter:
@@ -100,7 +102,10 @@ def design_band_filter(band_hz, samplerate_hz: float, transition_hz: float | Non
     tw = default_transition_hz((low, high), samplerate_hz) if transition_hz is None else float(transition_hz)
     numtaps = int(np.ceil((STOPBAND_DB - 7.95) / (14.36 * tw / samplerate_hz))) + 1
     numtaps += (numtaps + 1) % 2  # odd length: linear phase type I, whole-sample delay
-    cutoffs = [max(low - tw / 2.0, 1e-3 * nyq), min(high + tw / 2.0, nyq * (1 - 1e-6))]
+    if low - tw / 2.0 <= 0.0 or high + tw / 2.0 >= nyq:
+        raise ValueError(f"band_hz={band_hz!r} with transition_hz={tw:g}: the transitions must fit between "
+                         f"0 and {nyq:g} Hz")
+    cutoffs = [low, high]  # the -6 dB points are the band edges: effective bandwidth ≈ high - low
     taps = firwin(numtaps, cutoffs, pass_zero=False, window=("kaiser", kaiser_beta(STOPBAND_DB)),
                   fs=samplerate_hz, scale=False)
     return BandFilter((low, high), taps, tw, float(samplerate_hz))
