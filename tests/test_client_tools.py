@@ -226,3 +226,32 @@ def test_picture_live(svc, tmp_path):
     assert _brightest_bearing(png) == pytest.approx(52.0, abs=3.0)
     r = beamtap("picture", "--out", str(png))
     assert r.returncode == 2 and "--live" in r.stderr
+
+
+def _c_toolchain():
+    import shutil
+
+    if not shutil.which("gcc") or not shutil.which("pkg-config"):
+        return None
+    r = subprocess.run(["pkg-config", "--cflags", "--libs", "libzmq", "msgpack"], capture_output=True, text=True)
+    return r.stdout.split() if r.returncode == 0 else None
+
+
+@pytest.mark.skipif(_c_toolchain() is None, reason="needs gcc, libzmq3-dev and libmsgpack-dev (installed by .ci/run)")
+def test_c_subscriber_from_the_protocol_document(svc, tmp_path):
+    from pathlib import Path
+
+    src = Path(__file__).resolve().parents[1] / "docs/examples/power_peak.c"
+    exe = tmp_path / "power_peak"
+    build = subprocess.run(["gcc", "-O2", "-Wall", "-Werror", "-o", str(exe), str(src), *_c_toolchain()],
+                           capture_output=True, text=True)
+    assert build.returncode == 0, build.stderr
+    r = subprocess.run([str(exe), svc.publish, "120"], capture_output=True, text=True, timeout=60)
+    assert r.returncode == 0, r.stderr
+    rows = [dict(kv.split("=") for kv in line.split()) for line in r.stdout.splitlines()]
+    assert len(rows) == 120
+    seq = [int(row["seq"]) for row in rows]
+    assert np.all(np.diff(seq) == 1)
+    bearings = [float(row["bearing_deg"]) for row in rows if row["bearing_deg"] != "?"]
+    assert len(bearings) > 50  # the beam table arrives within a second
+    assert np.median(bearings) == pytest.approx(52.0, abs=2.0)
