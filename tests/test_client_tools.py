@@ -255,3 +255,63 @@ def test_c_subscriber_from_the_protocol_document(svc, tmp_path):
     bearings = [float(row["bearing_deg"]) for row in rows if row["bearing_deg"] != "?"]
     assert len(bearings) > 50  # the beam table arrives within a second
     assert np.median(bearings) == pytest.approx(52.0, abs=2.0)
+
+
+def test_subscriber_reports_sequence_and_sample_jumps_as_gaps():
+    import zmq
+
+    from beamtap.client import Subscriber
+    from beamtap.client.protocol import encode
+
+    ctx = zmq.Context.instance()
+    pub = ctx.socket(zmq.PUB)
+    port = pub.bind_to_random_port("tcp://127.0.0.1")
+    try:
+        with Subscriber(f"tcp://127.0.0.1:{port}", topics=["audio"], timeout_s=0.2) as sub:
+            block = np.zeros((256, 1), np.float32)
+
+            def send(seq, first):
+                pub.send_multipart(encode("audio", {"stream": "s1", "seq": seq, "first_sample": first,
+                                                    "gap": False, "frames_lost": 0}, block))
+
+            # the slow-joiner handshake: publish until the subscriber hears one
+            got = None
+            while got is None:
+                send(0, 0)
+                try:
+                    got = sub.recv()
+                except TimeoutError:
+                    pass
+            send(1, 256)
+            send(3, 768)        # one message dropped
+            send(4, 1280)       # samples jump with contiguous sequence numbers
+            frames = [sub.recv() for _ in range(3)]
+    finally:
+        pub.close(linger=0)
+    assert [f.seq for f in frames] == [1, 3, 4]
+    assert [f.gap for f in frames] == [False, True, True]
+    assert frames[1].missed_messages == 1 and frames[2].missed_messages == 0
+
+
+def test_demo_starts_service_and_view_and_stops_both(tmp_path):
+    master, slave = pty.openpty()
+    os.set_blocking(master, False)
+    env = dict(os.environ, TERM="xterm-256color", PYTHONIOENCODING="utf-8")
+    proc = subprocess.Popen([sys.executable, "-m", "beamtap", "demo", "--seconds", "6"], stdin=slave, stdout=slave,
+                            stderr=slave, env=env, close_fds=True)
+    out = b""
+    end = time.monotonic() + 60
+    while proc.poll() is None and time.monotonic() < end:
+        out += _read_pty(master, 0.2)
+    rc = proc.wait(timeout=5)
+    os.close(slave)
+    os.close(master)
+    text = out.decode("utf-8", "replace")
+    assert rc == 0
+    assert "demo: service publishing on" in text
+    peaks = [float(m) for m in re.findall(r"peak (-?\d+\.\d)°", text)]
+    assert peaks  # the view drew the demo scene
+    # the boat starts at 30° and moves 4°/s; the pinger sits at 118°
+    assert all(20.0 <= p <= 60.0 or 110.0 <= p <= 126.0 for p in peaks), peaks
+    leftover = subprocess.run(["pgrep", "-f", "beamtap serve --publish tcp://127.0.0.1:5560"], capture_output=True)
+    assert leftover.returncode == 1  # the demo's service is gone
