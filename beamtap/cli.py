@@ -156,6 +156,24 @@ def cmd_picture(args):
     print(f"wrote {args.out}: {len(data[2])} rows x {len(data[1])} bearings")
 
 
+def cmd_record(args):
+    from beamtap.client import record  # noqa: PLC0415
+
+    return record.run(args.endpoint, args.out, args.what, args.segment_s, args.sample_format, args.seconds,
+                      args.label)
+
+
+def cmd_mark(args):
+    from beamtap.client import Controller, ServiceError  # noqa: PLC0415
+
+    with Controller(args.control, timeout_s=args.timeout) as ctl:
+        try:
+            m = ctl.mark(" ".join(args.text))
+        except ServiceError as exc:
+            raise UsageError(str(exc)) from None
+    print(f"mark at sample {m['sample']} ({m['utc_iso']}): {m['text']}")
+
+
 def _client_call(fn):
     try:
         return fn()
@@ -189,7 +207,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = _add(sub, "process", cmd_process, "beamform a multichannel WAV offline with the config's beams")
     p.add_argument("config", help=f"config file (or {BUILTIN})")
-    p.add_argument("input", help="multichannel WAV (16/24/32-bit integer or 32-bit float)")
+    p.add_argument("input", help="multichannel WAV (16/24/32-bit integer or 32-bit float), or a session folder")
     p.add_argument("--out", required=True, help="output folder for beams.csv, power.csv, audio.wav, summary.json")
 
     p = _add(sub, "pattern", cmd_pattern, "theoretical array response against azimuth for one look direction")
@@ -266,6 +284,21 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--band", type=int, default=0, help="which band (0-based)")
     p.add_argument("--range-db", type=float, default=30.0, help="colour range below the maximum, dB")
     p.add_argument("--out", required=True, help="output PNG")
+
+    p = _add(sub, "record", cmd_record, "record a service's stream (from any machine) into a session folder")
+    p.add_argument("--out", required=True, help="new session folder")
+    p.add_argument("--endpoint", default=DEFAULT_PUBLISH, help=f"service stream (default {DEFAULT_PUBLISH})")
+    p.add_argument("--what", nargs="+", default=["audio", "power"], choices=["raw", "audio", "power"],
+                   help="topics to record (raw needs [publish] raw = true on the service)")
+    p.add_argument("--segment-s", type=float, default=60.0, help="segment length, seconds (default 60)")
+    p.add_argument("--sample-format", default="float32", choices=["float32", "int24"])
+    p.add_argument("--label", default="", help="a label stored in the manifest")
+    p.add_argument("--seconds", type=float, default=None, help="stop after this many seconds")
+
+    p = _add(sub, "mark", cmd_mark, "add a timestamped event mark to the service's recording")
+    p.add_argument("text", nargs="+", help="the mark, e.g. 'run 3 starts'")
+    p.add_argument("--control", default=DEFAULT_CONTROL, help=f"service control socket (default {DEFAULT_CONTROL})")
+    p.add_argument("--timeout", type=float, default=5.0)
 
     p = _add(sub, "demo", cmd_demo, "the built-in demo: start the service and the live view together")
     p.add_argument("--rate", type=float, default=8.0, help="redraws per second (default 8)")

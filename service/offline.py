@@ -23,7 +23,7 @@ from .engine.beamformer import Beamformer
 from .engine.directions import fan, unit_vectors
 from .engine.scene import Scene
 from .engine.shading import shading_weights
-from .wavfile import WavReader, WavWriter
+from beamtap.wavfile import WavReader, WavWriter
 
 
 def make_beamformer(config: Config, beams=None) -> Beamformer:
@@ -153,25 +153,79 @@ def _progress(done: int, total: int, fs: float):
 
 
 def process(config: Config, input_path, out_dir) -> dict:
-    """Beamform a WAV file (see the ``process`` command); returns the summary written."""
+    """Beamform a WAV file or a recorded session folder (the ``process`` command).
+
+    Returns the summary it writes to ``summary.json``.
+    """
     out = Path(out_dir)
     try:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise UsageError(f"--out {out}: cannot create folder: {exc.strerror}") from None
+    if Path(input_path).is_dir():
+        return _process_runs(config, _session_runs(config, Path(input_path)), out, str(input_path), "session")
     with WavReader(input_path) as reader:
-        fs = config.input.samplerate_hz
-        need = config.geometry.n_input_channels
-        if reader.samplerate_hz != int(round(fs)):
-            raise UsageError(f"{input_path}: sample rate {reader.samplerate_hz} Hz does not match "
-                             f"[input] samplerate_hz = {fs:g} in {config.where}")
-        if reader.channels < need:
-            raise UsageError(f"{input_path}: {reader.channels} channels, but the array in {config.where} "
-                             f"needs {need} (highest channel in its channel map)")
-        return _process_stream(config, reader, out)
+        _check_input(config, input_path, reader.samplerate_hz, reader.channels)
+        total = reader.frames
+
+        def blocks():
+            while True:
+                x, clipped = reader.read(config.input.block_frames)
+                if len(x) == 0:
+                    return
+                yield x, clipped
+
+        runs = [(0, total, reader.channels, reader.sample_format, blocks())]
+        return _process_runs(config, runs, out, reader.path, reader.sample_format)
 
 
-def _process_stream(config: Config, reader: WavReader, out: Path) -> dict:
+def _check_input(config: Config, where, samplerate_hz, channels):
+    fs = config.input.samplerate_hz
+    need = config.geometry.n_input_channels
+    if int(round(samplerate_hz)) != int(round(fs)):
+        raise UsageError(f"{where}: sample rate {samplerate_hz:g} Hz does not match "
+                         f"[input] samplerate_hz = {fs:g} in {config.where}")
+    if channels < need:
+        raise UsageError(f"{where}: {channels} channels, but the array in {config.where} "
+                         f"needs {need} (highest channel in its channel map)")
+
+
+def _session_runs(config: Config, folder: Path):
+    """Contiguous runs of a session's raw segments: (first, frames, channels, format, blocks)."""
+    from beamtap.session import MANIFEST, segments  # noqa: PLC0415
+
+    if not (folder / MANIFEST).exists():
+        raise UsageError(f"{folder}: not a beamtap session (no {MANIFEST})")
+    segs = segments(folder, "raw")
+    if not segs:
+        raise UsageError(f"{folder}: the session has no raw segments to beamform")
+    for seg in segs:
+        _check_input(config, folder / seg["file"], seg["samplerate_hz"], seg["channels"])
+    runs, current = [], []
+    for seg in segs:
+        if current and seg["first_sample"] != current[-1]["first_sample"] + current[-1]["frames"]:
+            runs.append(current)
+            current = []
+        current.append(seg)
+    runs.append(current)
+    block = config.input.block_frames
+
+    def blocks(run):
+        for seg in run:
+            with WavReader(folder / seg["file"]) as r:
+                left = seg["frames"]
+                while left > 0:
+                    x, clipped = r.read(min(block, left))
+                    if len(x) == 0:
+                        break
+                    left -= len(x)
+                    yield x, clipped
+
+    return [(run[0]["first_sample"], sum(s["frames"] for s in run), run[0]["channels"],
+             run[0].get("sample_format") or "float32", blocks(run)) for run in runs]
+
+
+def _process_runs(config: Config, runs, out: Path, source: str, input_format: str) -> dict:
     bf = make_beamformer(config)
     fs = config.input.samplerate_hz
     d = bf.bulk_delay_samples
@@ -183,51 +237,61 @@ def _process_stream(config: Config, reader: WavReader, out: Path) -> dict:
         w.writerow(["beam", "azimuth_deg", "elevation_deg"])
         for i, (az, el) in enumerate(beams.power_deg):
             w.writerow([i, f"{az:g}", f"{el:g}"])
-    counts = {"nan": 0, "clipped": 0, "frames": 0, "power_rows": 0}
+    counts = {"nan": 0, "clipped": 0, "frames": 0, "power_rows": 0, "gaps": 0, "gap_frames": 0}
     n_audio = len(beams.audio_deg)
     multi_band = len(beams.bands_hz) > 1
     header = ["time_s"] + [f"{i}" if not multi_band else f"{i}@band{b}"
                            for b in range(len(beams.bands_hz)) for i in range(len(beams.power_deg))]
-    audio_w = WavWriter(out / "audio.wav", fs, max(n_audio, 1)) if n_audio else None
-    skip = d  # the first D output frames precede the input's time zero
+    audio_w = WavWriter(out / "audio.wav", fs, n_audio) if n_audio else None
+    origin = runs[0][0] if runs else 0
+    total = sum(r[1] for r in runs)
     try:
         with open(out / "power.csv", "w", newline="") as pf:
             pw = csv.writer(pf)
             pw.writerow(header)
+            end_prev = None
+            for first, frames, channels, fmt, blocks in runs:
+                if end_prev is not None:  # a gap: silence in audio.wav keeps it on the session's time axis
+                    gap = first - end_prev
+                    counts["gaps"] += 1
+                    counts["gap_frames"] += gap
+                    if audio_w is not None:
+                        for k in range(0, gap, 65536):
+                            audio_w.write(np.zeros((min(65536, gap - k), n_audio), np.float32))
+                bf.reset(first)
+                run_end = first + frames
+                skip = d  # the first D output frames precede the run's first input frame
 
-            def emit(result):
-                nonlocal skip
-                if audio_w is not None and len(result.audio):
-                    a = result.audio[skip:]
-                    skip = max(0, skip - len(result.audio))
-                    audio_w.write(a)
-                for first, row in zip(result.power_first_sample, result.power_db):
-                    if first + block > counts["frames"]:
-                        continue  # a block completed by the zero tail, not by input
-                    pw.writerow([f"{(first - lag) / fs:.6f}"] + [f"{v:.3f}" for v in row.ravel()])
-                    counts["power_rows"] += 1
-                counts["nan"] += result.nan_count
-                if reader.sample_format == "float32":
-                    counts["clipped"] += result.clip_count
+                def emit(result):
+                    nonlocal skip
+                    if audio_w is not None and len(result.audio):
+                        audio_w.write(result.audio[skip:])
+                        skip = max(0, skip - len(result.audio))
+                    for p_first, row in zip(result.power_first_sample, result.power_db):
+                        if p_first + block > run_end:
+                            continue  # a block completed by the zero tail, not by input
+                        pw.writerow([f"{(p_first - origin - lag) / fs:.6f}"] + [f"{v:.3f}" for v in row.ravel()])
+                        counts["power_rows"] += 1
+                    counts["nan"] += result.nan_count
+                    if fmt == "float32":
+                        counts["clipped"] += result.clip_count
 
-            while True:
-                x, clipped = reader.read(block)
-                if len(x) == 0:
-                    break
-                counts["clipped"] += clipped  # integer input: full-scale codes
-                counts["frames"] += len(x)
-                emit(bf.process(x))
-                _progress(counts["frames"], reader.frames, fs)
-            # Push the last D frames of beam audio out so audio.wav has the input's length.
-            emit(bf.process(np.zeros((d, reader.channels), np.float32)))
-            emit(bf.flush())
+                for x, clipped in blocks:
+                    counts["clipped"] += clipped  # integer input: full-scale codes
+                    counts["frames"] += len(x)
+                    emit(bf.process(x))
+                    _progress(counts["frames"], total, fs)
+                # Push the last D frames of beam audio out so audio.wav has the input's length.
+                emit(bf.process(np.zeros((d, channels), np.float32)))
+                emit(bf.flush())
+                end_prev = run_end
     finally:
         if audio_w is not None:
             audio_w.close()
     result = {
         "software": f"beamtap {__version__}",
-        "input": reader.path,
-        "input_format": reader.sample_format,
+        "input": source,
+        "input_format": input_format,
         "config_file": config.where,
         "config_sha256": config.sha256,
         "config": config.text,
@@ -235,8 +299,12 @@ def _process_stream(config: Config, reader: WavReader, out: Path) -> dict:
         "bulk_delay_samples": d,
         "band_filter_delay_samples": lag - d,
         "power_time_axis": "time_s is the input time of the first sample each power row covers "
-                           "(bulk delay and band filter delay removed); rows cover whole blocks only",
+                           "(bulk delay and band filter delay removed), from the first input sample; "
+                           "rows cover whole blocks only",
+        "first_sample": int(origin),
         "frames_processed": counts["frames"],
+        "gaps": counts["gaps"],
+        "gap_frames": counts["gap_frames"],
         "power_rows": counts["power_rows"],
         "nan_samples": counts["nan"],
         "clipped_samples": counts["clipped"],

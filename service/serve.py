@@ -22,6 +22,7 @@ from .config import Config
 from .control import ControlServer
 from .pipeline import Pipeline
 from .publisher import Publisher
+from .recorder import Recorder
 from .sources import make_source
 
 log = logging.getLogger("beamtap.serve")
@@ -57,12 +58,7 @@ class Service:
             log.warning(warning)
         self.source = make_source(cfg)
         self.publisher = Publisher(cfg.publish.endpoint, self.stream_id, cfg.publish.send_queue, self.context)
-        try:
-            from .recorder import Recorder  # noqa: PLC0415
-
-            self.recorder = Recorder(cfg, self)
-        except ImportError:
-            self.recorder = None
+        self.recorder = Recorder(cfg, self)
         self.pipeline = Pipeline(cfg, self.source, self.publisher, self.recorder)
         self.control = ControlServer(cfg.control.endpoint, self, self.context)
         s = self.pipeline.array_summary()
@@ -90,7 +86,7 @@ class Service:
         for part in (self.source, self.pipeline, self.recorder, self.control):
             if part is not None:
                 try:
-                    part.stop()
+                    part.stop_thread() if part is self.recorder else part.stop()
                 except Exception:  # stopping must finish even if one part misbehaves
                     log.exception("while stopping %s", type(part).__name__)
         if self.publisher is not None:

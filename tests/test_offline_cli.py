@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 from scipy.io import wavfile
 
-from beamtap.service.wavfile import WavReader, WavWriter
+from beamtap.wavfile import WavReader, WavWriter
 
 CONFIG = """
 [array]

@@ -1,0 +1,295 @@
+"""Recorded sessions: a folder of rotating segments and a JSON Lines manifest.
+
+Layout of a session folder::
+
+    manifest.jsonl          one JSON object per line, appended and fsynced as it goes
+    raw-000001.wav ...      calibrated input channels, float32 (or 24-bit) WAV
+    audio-000001.wav ...    audio beams
+    power-000001.csv ...    band power rows
+
+Manifest records (``type``): ``session`` (first line: config text and its
+SHA-256, software version, host, start time, what is recorded), ``beams``
+(the beam table, whenever it changes), ``segment_open`` and ``segment``
+(a segment's file, kind, channels, ``first_sample``, UTC of its first
+sample, sample rate, beam table and the frames lost just before it; the
+closing record adds ``frames``), ``gap``, ``mark``, ``error`` and
+``stop``. Every segment is contiguous in stream samples; a loss starts a
+new segment.
+
+Crash safety: WAV headers are rewritten and files fsynced every
+``flush_s`` (one second by default), and every manifest line is fsynced
+when written, so a power cut loses at most the last second of the open
+segments; the files stay readable by any WAV reader. A segment with a
+``segment_open`` record but no ``segment`` record was open at the crash;
+its length is whatever its (valid) header says.
+
+Used by the service's recorder and by the standalone ``beamtap record``;
+needs only numpy and the standard library.
+"""
+
+from __future__ import annotations
+
+import csv
+import datetime as dt
+import json
+import os
+import socket
+import time
+from pathlib import Path
+
+import numpy as np
+
+from beamtap import __version__
+from beamtap.wavfile import WavReader, WavWriter
+
+MANIFEST = "manifest.jsonl"
+KINDS = ("raw", "audio", "power")
+FORMAT_VERSION = 1
+#: Keep every WAV segment well below the 4 GiB RIFF limit.
+MAX_SEGMENT_BYTES = 2**31
+
+
+def iso(utc: float) -> str:
+    return dt.datetime.fromtimestamp(utc, dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+class SessionWriter:
+    """Write one session folder.
+
+    Parameters
+    ----------
+    folder : path
+        The session folder (created; must not exist yet).
+    what : sequence of str
+        Kinds to record, from ``raw``, ``audio``, ``power``.
+    samplerate_hz : float
+    segment_s : float
+        Segment length in seconds of stream time.
+    sample_format : {"float32", "int24"}
+    session_info : dict
+        Extra keys for the ``session`` record (config text, hash, D, label…).
+    flush_s : float
+        Interval of header rewrites and fsyncs.
+    power_block_frames : int
+        Frames each power row covers.
+    """
+
+    def __init__(self, folder, what, samplerate_hz: float, segment_s: float = 60.0,
+                 sample_format: str = "float32", session_info: dict | None = None, flush_s: float = 1.0,
+                 power_block_frames: int = 1024):
+        self.folder = Path(folder)
+        self.folder.mkdir(parents=True, exist_ok=False)
+        self.what = tuple(what)
+        self.fs = float(samplerate_hz)
+        self.segment_frames = max(1, int(round(segment_s * self.fs)))
+        self.sample_format = sample_format
+        self.flush_s = flush_s
+        self.power_block_frames = int(power_block_frames)
+        self._manifest = open(self.folder / MANIFEST, "a", encoding="utf-8")
+        self._open: dict = {}  # kind -> dict(writer, record, next_sample, ...)
+        self._counter = {k: 0 for k in KINDS}
+        self._last_flush = time.monotonic()
+        self.beam_table_id = None
+        self.frames_written = {k: 0 for k in KINDS}
+        self.segments_closed = 0
+        now = time.time()
+        self.record("session", format="beamtap-session", format_version=FORMAT_VERSION,
+                    software=f"beamtap {__version__}", host=socket.gethostname(), started_utc=now,
+                    started_iso=iso(now), what=list(self.what), samplerate_hz=self.fs, segment_s=segment_s,
+                    sample_format=sample_format, **(session_info or {}))
+
+    # ---- manifest ---------------------------------------------------------
+    def record(self, type_: str, **fields) -> dict:
+        rec = {"type": type_, **fields}
+        self._manifest.write(json.dumps(rec, default=_json_default) + "\n")
+        self._manifest.flush()
+        os.fsync(self._manifest.fileno())
+        return rec
+
+    def beams(self, table: dict) -> None:
+        """Note the beam table in force; audio and power segments rotate when it changes."""
+        if table.get("beam_table") == self.beam_table_id:
+            return
+        changed = self.beam_table_id is not None
+        self.beam_table_id = table.get("beam_table")
+        self.record("beams", **table)
+        if changed:
+            for kind in ("audio", "power"):
+                if kind in self._open:
+                    self._close(kind)
+
+    def mark(self, text: str, sample: int, utc: float) -> dict:
+        return self.record("mark", sample=int(sample), utc=utc, utc_iso=iso(utc), text=text)
+
+    # ---- data ---------------------------------------------------------------
+    def write(self, kind: str, first_sample: int, data: np.ndarray, utc_first: float) -> None:
+        """Append a block of ``kind`` starting at stream sample ``first_sample``.
+
+        ``data`` is (frames, channels) float for raw and audio; for power it
+        is one row (n_bands, n_beams) describing the power block that starts
+        at ``first_sample``.
+        """
+        if kind == "power":
+            self._write_power(first_sample, data, utc_first)
+            return
+        data = np.asarray(data, np.float32)
+        pos = 0
+        while pos < len(data):
+            seg = self._segment_for(kind, first_sample + pos, data.shape[1], utc_first + pos / self.fs)
+            room = self.segment_frames - seg["frames"]
+            n = min(room, len(data) - pos)
+            seg["writer"].write(data[pos:pos + n])
+            seg["frames"] += n
+            seg["next"] += n
+            self.frames_written[kind] += n
+            pos += n
+            if seg["frames"] >= self.segment_frames:
+                self._close(kind)
+        self._maybe_flush()
+
+    def _segment_for(self, kind, first_sample, channels, utc):
+        seg = self._open.get(kind)
+        gap = 0
+        if seg is not None and (seg["next"] != first_sample or seg["channels"] != channels):
+            gap = max(0, first_sample - seg["next"])
+            self.record("gap", kind=kind, at_sample=int(first_sample), frames_lost=int(gap))
+            self._close(kind)
+            seg = None
+        if seg is None:
+            seg = self._new_segment(kind, first_sample, channels, utc, gap)
+        return seg
+
+    def _new_segment(self, kind, first_sample, channels, utc, gap):
+        self._counter[kind] += 1
+        width = 4 if self.sample_format == "float32" else 3
+        if 44 + self.segment_frames * channels * width > MAX_SEGMENT_BYTES:
+            raise ValueError(f"segment_s gives {self.segment_frames * channels * width / 2**30:.1f} GiB "
+                             f"segments of {channels} channels; keep segments under 2 GiB")
+        if kind == "power":
+            name = f"power-{self._counter[kind]:06d}.csv"
+            f = open(self.folder / name, "w", newline="", encoding="utf-8")
+            writer = csv.writer(f)
+            seg = {"file": f, "csv": writer, "frames": 0, "rows": 0}
+        else:
+            name = f"{kind}-{self._counter[kind]:06d}.wav"
+            seg = {"writer": WavWriter(self.folder / name, self.fs, channels, self.sample_format), "frames": 0}
+        seg.update(name=name, kind=kind, channels=channels, first=int(first_sample), next=int(first_sample),
+                   utc=utc, gap=int(gap))
+        seg["record"] = dict(file=name, kind=kind, channels=channels, first_sample=int(first_sample),
+                             utc=utc, utc_iso=iso(utc), samplerate_hz=self.fs, beam_table=self.beam_table_id,
+                             gap_before_frames=int(gap), sample_format=None if kind == "power" else self.sample_format)
+        self.record("segment_open", **seg["record"])
+        self._open[kind] = seg
+        return seg
+
+    def _write_power(self, first_sample, rows, utc_first):
+        rows = np.asarray(rows, np.float32)
+        seg = self._segment_for("power", first_sample, rows.size, utc_first)
+        if seg["rows"] == 0:
+            seg["csv"].writerow(["first_sample", "time_utc"] + [f"band{b}_beam{i}" for b in range(rows.shape[0])
+                                                                for i in range(rows.shape[1])])
+        seg["csv"].writerow([int(first_sample), f"{utc_first:.6f}"] + [f"{v:.3f}" for v in rows.ravel()])
+        seg["rows"] += 1
+        seg["frames"] += self.power_block_frames
+        seg["next"] = int(first_sample) + self.power_block_frames
+        if seg["frames"] >= self.segment_frames:
+            self._close("power")
+        self._maybe_flush()
+
+    # ---- housekeeping -----------------------------------------------------------
+    def _maybe_flush(self, force=False):
+        now = time.monotonic()
+        if force or now - self._last_flush >= self.flush_s:
+            for seg in self._open.values():
+                if "writer" in seg:
+                    seg["writer"].flush(sync=True)
+                else:
+                    seg["file"].flush()
+                    os.fsync(seg["file"].fileno())
+            self._last_flush = now
+
+    def _close(self, kind):
+        seg = self._open.pop(kind)
+        if "writer" in seg:
+            seg["writer"].close()
+            frames = seg["frames"]
+        else:
+            seg["file"].flush()
+            os.fsync(seg["file"].fileno())
+            seg["file"].close()
+            frames = seg["rows"]
+        rec = dict(seg["record"], closed_utc=time.time())
+        rec["frames" if kind != "power" else "rows"] = int(frames)
+        self.record("segment", **rec)
+        self.segments_closed += 1
+
+    def close(self, reason: str = "stopped") -> None:
+        for kind in list(self._open):
+            try:
+                self._close(kind)
+            except OSError:
+                pass
+        now = time.time()
+        self.record("stop", stopped_utc=now, stopped_iso=iso(now), reason=reason,
+                    frames_written=self.frames_written)
+        self._manifest.close()
+
+    @property
+    def open_segments(self) -> int:
+        return len(self._open)
+
+
+def _json_default(o):
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    return str(o)
+
+
+# ---------------------------------------------------------------------------
+# Reading
+# ---------------------------------------------------------------------------
+def read_manifest(folder) -> list[dict]:
+    """All manifest records; a line cut off by a crash is ignored."""
+    out = []
+    with open(Path(folder) / MANIFEST, encoding="utf-8") as f:
+        for line in f:
+            try:
+                out.append(json.loads(line))
+            except json.JSONDecodeError:
+                break
+    return out
+
+
+def segments(folder, kind: str) -> list[dict]:
+    """The segments of one kind in stream order, with ``frames`` filled in.
+
+    A segment still open at a crash gets its frame count from its WAV header.
+    """
+    folder = Path(folder)
+    recs = read_manifest(folder)
+    closed = {r["file"]: r for r in recs if r["type"] == "segment" and r["kind"] == kind}
+    out = []
+    for r in recs:
+        if r["type"] != "segment_open" or r["kind"] != kind:
+            continue
+        seg = dict(closed.get(r["file"], r))
+        seg["closed"] = r["file"] in closed
+        if kind != "power" and "frames" not in seg:
+            try:
+                with WavReader(folder / r["file"]) as w:
+                    seg["frames"] = w.frames
+            except Exception:
+                seg["frames"] = 0
+        out.append(seg)
+    return sorted(out, key=lambda s: s["first_sample"])
+
+
+def read_kind(folder, kind: str):
+    """Yield ``(first_sample, frames float32 (n, channels))`` for every segment of ``kind``."""
+    folder = Path(folder)
+    for seg in segments(folder, kind):
+        with WavReader(folder / seg["file"]) as w:
+            data, _ = w.read(seg["frames"])
+        yield seg["first_sample"], data
