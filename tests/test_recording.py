@@ -239,7 +239,7 @@ def test_session_replayed_offline_and_live_reproduces_the_live_beams(tmp_path):
     assert np.max(np.abs(a - b)) <= 1e-5 * max(1.0, np.max(np.abs(b)))
     assert any(rec_["type"] == "mark" and rec_["text"] == "buoy deployed" for rec_ in read_manifest(session))
     # and through the live pipeline: [input] source = "session"
-    replay = cfg_text.replace('source = "simulated"', f'source = "session"\npath = "{session}"\nrealtime = false')
+    replay = cfg_text.replace('source = "simulated"', f'source = "session"\npath = "{session}"')
     replay = replay.replace("raw = true", "raw = false")
     (tmp_path / "r").mkdir()
     with running_service(tmp_path / "r", replay) as svc:
