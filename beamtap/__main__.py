@@ -4,4 +4,5 @@ import sys
 
 from beamtap.cli import main
 
-sys.exit(main())
+if __name__ == "__main__":  # guarded: the scene's child process re-imports the main module
+    sys.exit(main())

@@ -104,19 +104,84 @@ class Source:
 
 
 class SimulatedSource(Source):
-    """The config's simulated scene, generated in real time."""
+    """The config's simulated scene, generated in real time in a child process.
+
+    Rendering a scene is Python-heavy; in its own process it never holds the
+    processing thread's interpreter lock, so the simulated source loads the
+    service the way a sound card does: blocks arrive, get copied into the
+    ring, and that is all. The child paces the blocks (or, with
+    ``realtime = false``, renders as fast as the pipe takes them).
+    """
 
     kind = "simulated"
 
-    def __init__(self, scene, channels, samplerate_hz, block_frames, ring_frames, realtime=True):
+    def __init__(self, config_text, where, channels, samplerate_hz, block_frames, ring_frames, realtime=True):
         super().__init__(channels, samplerate_hz, ring_frames)
-        self.scene, self.block_frames, self.realtime = scene, int(block_frames), realtime
+        self.config_text, self.where = config_text, where
+        self.block_frames, self.realtime = int(block_frames), realtime
+        self._proc = None
 
     def _run(self):
-        t0 = time.monotonic()
-        self.clock = SampleClock(self.samplerate_hz, time.time())
-        while not self._stop.is_set():
-            self._paced_write(self.scene.render(self.block_frames), t0, self.realtime)
+        import multiprocessing as mp  # noqa: PLC0415
+
+        ctx = mp.get_context("spawn")
+        receiver, sender = ctx.Pipe(duplex=False)
+        stop = ctx.Event()
+        self._proc = ctx.Process(target=_render_scene, name="beamtap-scene", daemon=True,
+                                 args=(self.config_text, self.where, self.block_frames, self.realtime, sender, stop))
+        self._proc.start()
+        sender.close()
+        try:
+            frame_bytes = self.block_frames * self.channels * 4
+            while not self._stop.is_set():
+                if not receiver.poll(0.2):
+                    if not self._proc.is_alive():
+                        raise RuntimeError(f"scene process ended (exit code {self._proc.exitcode})")
+                    continue
+                msg = receiver.recv_bytes()
+                if len(msg) != frame_bytes:  # the first message: UTC of sample 0
+                    self.clock = SampleClock(self.samplerate_hz, float(msg.decode()))
+                    continue
+                block = np.frombuffer(msg, np.float32).reshape(self.block_frames, self.channels)
+                if self.realtime:
+                    self.ring.write(block)
+                else:
+                    self._paced_write(block, 0.0, False)
+        except EOFError:
+            pass
+        finally:
+            stop.set()
+            receiver.close()
+            self._proc.join(timeout=2.0)
+            if self._proc.is_alive():
+                self._proc.terminate()
+
+
+def _render_scene(config_text, where, block_frames, realtime, conn, stop):
+    """Child process: render the config's scene block by block, paced in real time."""
+    import signal as _signal  # noqa: PLC0415
+
+    _signal.signal(_signal.SIGINT, _signal.SIG_IGN)  # the parent decides when to stop
+    from .config import loads  # noqa: PLC0415
+    from .offline import make_scene  # noqa: PLC0415
+
+    config = loads(config_text, where)
+    scene = make_scene(config)
+    fs = config.input.samplerate_hz
+    conn.send_bytes(repr(time.time()).encode())
+    t0 = time.monotonic()
+    n = 0
+    try:
+        while not stop.is_set():
+            block = np.ascontiguousarray(scene.render(block_frames), np.float32)
+            n += block_frames
+            if realtime:
+                delay = t0 + n / fs - time.monotonic()
+                if delay > 0 and stop.wait(delay):
+                    break
+            conn.send_bytes(block.tobytes())
+    except (BrokenPipeError, EOFError, OSError):
+        pass
 
 
 class FileSource(Source):
@@ -359,9 +424,8 @@ def make_source(config):
     ring = max(int(inp.ring_s * inp.samplerate_hz), 2 * inp.block_frames)
     ch = geo.n_input_channels
     if inp.source == "simulated":
-        from .offline import make_scene  # noqa: PLC0415
-
-        return SimulatedSource(make_scene(config), ch, inp.samplerate_hz, inp.block_frames, ring, inp.realtime)
+        return SimulatedSource(config.text, config.where, ch, inp.samplerate_hz, inp.block_frames, ring,
+                               inp.realtime)
     if inp.source == "file":
         return FileSource(inp.path, ch, inp.samplerate_hz, inp.block_frames, ring, inp.realtime, inp.loop)
     if inp.source == "soundcard":
