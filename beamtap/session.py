@@ -101,7 +101,7 @@ class SessionWriter:
     # ---- manifest ---------------------------------------------------------
     def record(self, type_: str, **fields) -> dict:
         rec = {"type": type_, **fields}
-        self._manifest.write(json.dumps(rec, default=_json_default) + "\n")
+        self._manifest.write(json.dumps(rec, default=json_default) + "\n")
         self._manifest.flush()
         os.fsync(self._manifest.fileno())
         return rec
@@ -239,7 +239,8 @@ class SessionWriter:
         return len(self._open)
 
 
-def _json_default(o):
+def json_default(o):
+    """``json.dumps`` fallback for numpy values."""
     if isinstance(o, np.generic):
         return o.item()
     if isinstance(o, np.ndarray):

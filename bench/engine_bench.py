@@ -75,12 +75,12 @@ class ReferenceBeamformer:
         return out_a, power
 
 
-def _median_seconds_per_block(process, x, blocks, repeats):
+def _median_seconds_per_block(process, x, blocks, repeats, block=BLOCK):
     per_block = []
     for r in range(repeats):
         t0 = time.process_time()
         for i in range(blocks):
-            process(x[i * BLOCK:(i + 1) * BLOCK])
+            process(x[i * block:(i + 1) * block])
         per_block.append((time.process_time() - t0) / blocks)
     return float(np.median(per_block))
 
@@ -101,8 +101,7 @@ def measure(n_sensors, n_beams, n_audio, batch, blocks, repeats, reference=True,
         bf.process(x[i * block:(i + 1) * block])
     grow = tracemalloc.get_traced_memory()[0] - base
     tracemalloc.stop()
-    t_engine = _median_seconds_per_block(bf.process, x, blocks, repeats) if block == BLOCK else \
-        _median_seconds_per_block_sized(bf.process, x, blocks, repeats, block)
+    t_engine = _median_seconds_per_block(bf.process, x, blocks, repeats, block)
     row = {
         "sensors": n_sensors, "beams": len(power), "audio_beams": n_audio, "block": block,
         "power_batch_blocks": batch, "fft_size": bf.fft_size,
@@ -112,20 +111,10 @@ def measure(n_sensors, n_beams, n_audio, batch, blocks, repeats, reference=True,
     }
     if reference:
         ref = ReferenceBeamformer(geo, power, audio, block)
-        t_ref = _median_seconds_per_block(ref.process, x, min(blocks, 24), max(2, repeats // 2))
+        t_ref = _median_seconds_per_block(ref.process, x, min(blocks, 24), max(2, repeats // 2), block)
         row.update({"reference_ms_per_block": 1e3 * t_ref, "reference_rtf": block / FS / t_ref,
                     "speedup_vs_reference": t_ref / t_engine})
     return row
-
-
-def _median_seconds_per_block_sized(process, x, blocks, repeats, block):
-    per_block = []
-    for r in range(repeats):
-        t0 = time.process_time()
-        for i in range(blocks):
-            process(x[i * block:(i + 1) * block])
-        per_block.append((time.process_time() - t0) / blocks)
-    return float(np.median(per_block))
 
 
 def main():

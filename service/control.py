@@ -22,6 +22,7 @@ from beamtap.client.protocol import MAX_REQUEST_BYTES, ProtocolError, pack, unpa
 from beamtap.errors import ConfigError, UsageError
 
 from . import config as cfg
+from .publisher import bind
 
 log = logging.getLogger("beamtap.control")
 
@@ -80,13 +81,7 @@ class ControlServer:
         self.service = service
         self._ctx = context or zmq.Context.instance()
         self._sock = self._ctx.socket(zmq.REP)
-        self._sock.setsockopt(zmq.LINGER, 0)
-        try:
-            self._sock.bind(endpoint)
-        except zmq.ZMQError as exc:
-            self._sock.close()
-            raise UsageError(f"[control] endpoint = {endpoint!r}: cannot bind: {exc}") from None
-        self.endpoint = self._sock.getsockopt_string(zmq.LAST_ENDPOINT)
+        self.endpoint = bind(self._sock, endpoint, "control")
         self._stop = threading.Event()
         self._thread = None
         self.requests = 0

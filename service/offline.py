@@ -23,6 +23,7 @@ from .engine.beamformer import Beamformer
 from .engine.directions import fan, unit_vectors
 from .engine.scene import Scene
 from .engine.shading import shading_weights
+from beamtap.session import json_default
 from beamtap.wavfile import WavReader, WavWriter
 
 
@@ -310,16 +311,8 @@ def _process_runs(config: Config, runs, out: Path, source: str, input_format: st
         "clipped_samples": counts["clipped"],
         "summary": summary(config, bf),
     }
-    (out / "summary.json").write_text(json.dumps(result, indent=2, default=_json_default))
+    (out / "summary.json").write_text(json.dumps(result, indent=2, default=json_default))
     return result
-
-
-def _json_default(o):
-    if isinstance(o, np.generic):
-        return o.item()
-    if isinstance(o, np.ndarray):
-        return o.tolist()
-    return str(o)
 
 
 def pattern(config: Config, frequency_hz: float, look_deg, out_path, step_deg: float = 0.1) -> np.ndarray:

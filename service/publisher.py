@@ -14,8 +14,20 @@ import time
 import zmq
 
 from beamtap.client.protocol import encode
+from beamtap.errors import UsageError
 
 log = logging.getLogger("beamtap.publish")
+
+
+def bind(sock, endpoint: str, section: str) -> str:
+    """Bind ``sock`` (LINGER 0); returns the bound endpoint, or a config error naming ``[section] endpoint``."""
+    sock.setsockopt(zmq.LINGER, 0)
+    try:
+        sock.bind(endpoint)
+    except zmq.ZMQError as exc:
+        sock.close()
+        raise UsageError(f"[{section}] endpoint = {endpoint!r}: cannot bind: {exc}") from None
+    return sock.getsockopt_string(zmq.LAST_ENDPOINT)
 
 
 class Publisher:
@@ -37,15 +49,7 @@ class Publisher:
         self._ctx = context or zmq.Context.instance()
         self._sock = self._ctx.socket(zmq.PUB)
         self._sock.setsockopt(zmq.SNDHWM, int(send_queue))
-        self._sock.setsockopt(zmq.LINGER, 0)
-        try:
-            self._sock.bind(endpoint)
-        except zmq.ZMQError as exc:
-            self._sock.close()
-            from beamtap.errors import UsageError  # noqa: PLC0415
-
-            raise UsageError(f"[publish] endpoint = {endpoint!r}: cannot bind: {exc}") from None
-        self.endpoint = self._sock.getsockopt_string(zmq.LAST_ENDPOINT)
+        self.endpoint = bind(self._sock, endpoint, "publish")
         self.seq = {}
         self.sent = 0
         self.dropped = 0

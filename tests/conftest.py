@@ -118,3 +118,27 @@ def running_service(tmp_path, config_text=None, extra_args=(), env=None, expect_
                 proc.wait()
     if expect_rc is not None:
         assert proc.returncode == expect_rc, open(log_path).read()
+
+
+def line_config(count=16, spacing_m=0.5, samplerate_hz=48000, block_frames=1024, source="simulated",
+                input_extra="", scene=(), fan=(0.0, 180.0, 2.0), band_hz=(300.0, 1400.0), audio_deg=(),
+                extra=""):
+    """A config for a line array in water at 1500 m/s, as TOML text.
+
+    ``scene`` is a sequence of dicts, one ``[[input.scene]]`` entry each.
+    """
+    def toml(v):
+        if isinstance(v, str):
+            return f'"{v}"'
+        if isinstance(v, (list, tuple)):
+            return "[" + ", ".join(toml(e) for e in v) + "]"
+        return repr(v)
+
+    entries = "".join("[[input.scene]]\n" + "".join(f"{k} = {toml(v)}\n" for k, v in s.items()) for s in scene)
+    audio = f"audio_deg = {toml([list(a) for a in audio_deg])}\n" if audio_deg else ""
+    return (f"[array]\nline = {{ count = {count}, spacing_m = {spacing_m} }}\n"
+            f"[medium]\nsound_speed_mps = 1500.0\n"
+            f"[input]\nsource = \"{source}\"\nsamplerate_hz = {samplerate_hz}\nblock_frames = {block_frames}\n"
+            f"{input_extra}\n{entries}"
+            f"[beams]\nfan = {{ from_deg = {fan[0]}, to_deg = {fan[1]}, step_deg = {fan[2]} }}\n"
+            f"band_hz = {toml(list(band_hz))}\n{audio}{extra}\n")

@@ -6,7 +6,7 @@ import pytest
 
 from beamtap.client import Controller, Subscriber
 
-from conftest import broadband_plane_wave, running_service
+from conftest import broadband_plane_wave, line_config, running_service
 
 FS = 48000
 N_CH = 8
@@ -22,22 +22,8 @@ def _portaudio_available():
 
 
 def soundcard_config(device):
-    return f"""
-[array]
-line = {{ count = {N_CH}, spacing_m = 0.5 }}
-[medium]
-sound_speed_mps = 1500.0
-[input]
-source = "soundcard"
-device = "{device}"
-samplerate_hz = {FS}
-block_frames = 1024
-ring_s = 0.5
-[beams]
-fan = {{ from_deg = 0.0, to_deg = 180.0, step_deg = 1.0 }}
-band_hz = [300.0, 1400.0]
-audio_deg = [[{BEARING}, 0.0]]
-"""
+    return line_config(count=N_CH, samplerate_hz=FS, source="soundcard", fan=(0.0, 180.0, 1.0),
+                       input_extra=f'device = "{device}"\nring_s = 0.5', audio_deg=[(BEARING, 0.0)])
 
 
 @pytest.fixture
@@ -112,44 +98,14 @@ def test_unknown_capture_device_is_a_one_line_error(tmp_path, virtual_card):
     assert "no-such-card" in r.stderr and "Traceback" not in r.stderr
 
 
-UPSTREAM = """
-[array]
-line = { count = 8, spacing_m = 0.5 }
-[medium]
-sound_speed_mps = 1500.0
-[input]
-source = "simulated"
-samplerate_hz = 16000
-block_frames = 512
-scene_noise_db = -60.0
-[[input.scene]]
-azimuth_deg = 48.0
-signal = "noise"
-band_hz = [300.0, 1400.0]
-level_db = -20.0
-[beams]
-directions_deg = [[90.0, 0.0]]
-band_hz = [300.0, 1400.0]
-[publish]
-raw = true
-"""
+UPSTREAM = line_config(count=8, samplerate_hz=16000, block_frames=512, input_extra="scene_noise_db = -60.0",
+                       scene=[{"azimuth_deg": 48.0, "signal": "noise", "band_hz": [300.0, 1400.0], "level_db": -20.0}],
+                       extra="[publish]\nraw = true\n")
 
 
 def downstream(endpoint):
-    return f"""
-[array]
-line = {{ count = 8, spacing_m = 0.5 }}
-[medium]
-sound_speed_mps = 1500.0
-[input]
-source = "stream"
-endpoint = "{endpoint}"
-samplerate_hz = 16000
-block_frames = 512
-[beams]
-fan = {{ from_deg = 0.0, to_deg = 180.0, step_deg = 1.0 }}
-band_hz = [300.0, 1400.0]
-"""
+    return line_config(count=8, samplerate_hz=16000, block_frames=512, source="stream",
+                       input_extra=f'endpoint = "{endpoint}"', fan=(0.0, 180.0, 1.0))
 
 
 def test_beam_worker_on_another_services_raw_stream_and_upstream_restart_is_a_gap(tmp_path):

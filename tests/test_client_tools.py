@@ -16,28 +16,11 @@ import pytest
 from beamtap.client import Controller
 from beamtap.client.tail import format_line
 
-from conftest import running_service
+from conftest import line_config, running_service
 
-SCENE = """
-[array]
-line = { count = 16, spacing_m = 0.5 }
-[medium]
-sound_speed_mps = 1500.0
-[input]
-source = "simulated"
-samplerate_hz = 48000
-block_frames = 1024
-scene_noise_db = -50.0
-[[input.scene]]
-azimuth_deg = 52.0
-signal = "noise"
-band_hz = [300.0, 1400.0]
-level_db = -20.0
-[beams]
-fan = { from_deg = 0.0, to_deg = 180.0, step_deg = 2.0 }
-band_hz = [300.0, 1400.0]
-audio_deg = [[52.0, 0.0], [140.0, 0.0]]
-"""
+SCENE = line_config(input_extra="scene_noise_db = -50.0",
+                    scene=[{"azimuth_deg": 52.0, "signal": "noise", "band_hz": [300.0, 1400.0], "level_db": -20.0}],
+                    audio_deg=[(52.0, 0.0), (140.0, 0.0)])
 
 
 @pytest.fixture(scope="module")

@@ -17,33 +17,17 @@ from scipy.io import wavfile
 from beamtap.client import Controller, Subscriber
 from beamtap.session import read_manifest, segments
 
-from conftest import running_service
+from conftest import line_config, running_service
 
 FS = 16000
 BLOCK = 512
 
 
 def config(folder, segment_s=3.0, on_start=False, min_free_mb=1.0, what='["raw", "audio", "power"]'):
-    return f"""
-[array]
-line = {{ count = 8, spacing_m = 0.5 }}
-[medium]
-sound_speed_mps = 1500.0
-[input]
-source = "simulated"
-samplerate_hz = {FS}
-block_frames = {BLOCK}
-scene_noise_db = -50.0
-[[input.scene]]
-azimuth_deg = 70.0
-signal = "noise"
-band_hz = [300.0, 1400.0]
-level_db = -20.0
-[beams]
-fan = {{ from_deg = 0.0, to_deg = 180.0, step_deg = 2.0 }}
-band_hz = [300.0, 1400.0]
-audio_deg = [[70.0, 0.0], [20.0, 0.0]]
-[publish]
+    return line_config(count=8, samplerate_hz=FS, block_frames=BLOCK, input_extra="scene_noise_db = -50.0",
+                       scene=[{"azimuth_deg": 70.0, "signal": "noise", "band_hz": [300.0, 1400.0], "level_db": -20.0}],
+                       audio_deg=[(70.0, 0.0), (20.0, 0.0)],
+                       extra=f"""[publish]
 raw = true
 [record]
 folder = "{folder}"
@@ -51,7 +35,7 @@ what = {what}
 segment_s = {segment_s}
 on_start = {"true" if on_start else "false"}
 min_free_mb = {min_free_mb}
-"""
+""")
 
 
 def wait_recording(ctl, frames, timeout=30):

@@ -10,36 +10,17 @@ import zmq
 from beamtap.client import Controller, ServiceError, Subscriber
 from beamtap.client.protocol import pack, unpack
 
-from conftest import running_service
+from conftest import line_config, running_service
 
 FS = 48000
 CHIRP = dict(f0=400.0, f1=1400.0, period=0.5, level_db=-20.0)
-LINE = """
-[array]
-line = {{ count = 16, spacing_m = 0.5 }}
-[medium]
-sound_speed_mps = 1500.0
-[input]
-source = "simulated"
-samplerate_hz = 48000
-block_frames = 1024
-scene_noise_db = -50.0
-[[input.scene]]
-azimuth_deg = 63.0
-signal = "chirp"
-band_hz = [{f0}, {f1}]
-period_s = {period}
-level_db = {level_db}
-[beams]
-fan = {{ from_deg = 0.0, to_deg = 180.0, step_deg = 1.0 }}
-band_hz = [400.0, 1400.0]
-audio_deg = [[63.0, 0.0], [120.0, 0.0]]
-{extra}
-"""
 
 
-def line_config(extra=""):
-    return LINE.format(extra=extra, **CHIRP)
+def scene_config(extra=""):
+    return line_config(input_extra="scene_noise_db = -50.0", fan=(0.0, 180.0, 1.0), band_hz=(400.0, 1400.0),
+                       scene=[{"azimuth_deg": 63.0, "signal": "chirp", "band_hz": [CHIRP["f0"], CHIRP["f1"]],
+                               "period_s": CHIRP["period"], "level_db": CHIRP["level_db"]}],
+                       audio_deg=[(63.0, 0.0), (120.0, 0.0)], extra=extra)
 
 
 def chirp(t):
@@ -60,7 +41,7 @@ def collect(sub, want, topics=("power", "audio")):
 
 @pytest.fixture(scope="module")
 def line_service(tmp_path_factory):
-    with running_service(tmp_path_factory.mktemp("line"), line_config()) as svc:
+    with running_service(tmp_path_factory.mktemp("line"), scene_config()) as svc:
         yield svc
 
 
@@ -187,7 +168,7 @@ def test_stalled_subscriber_does_not_slow_others_or_grow_memory(line_service):
 
 
 def test_sigterm_stops_within_two_seconds_with_status_zero(tmp_path):
-    with running_service(tmp_path, line_config()) as svc:
+    with running_service(tmp_path, scene_config()) as svc:
         with Subscriber(svc.publish, topics=["power"], timeout_s=10) as sub:
             sub.recv()
         t0 = time.monotonic()
