@@ -142,3 +142,73 @@ def test_beam_worker_on_another_services_raw_stream_and_upstream_restart_is_a_ga
 def _restart(directory, endpoint):
     """The upstream again, bound to the port the downstream is connected to."""
     return running_service(directory, UPSTREAM, publish=endpoint)
+
+
+@pytest.fixture
+def jack_server(tmp_path):
+    """A private JACK server with the dummy driver (paces capture in real time)."""
+    import os
+    import shutil
+    import signal
+    import subprocess
+    import time
+
+    if not shutil.which("jackd"):
+        pytest.skip("needs jackd2 (installed by .ci/run)")
+    name = f"beamtap{os.getpid()}"
+    env = dict(os.environ, JACK_NO_AUDIO_RESERVATION="1", JACK_DEFAULT_SERVER=name)
+    log = open(tmp_path / "jack.log", "w")
+    proc = subprocess.Popen(["jackd", "-n", name, "-R", "-d", "dummy", "-r", str(FS), "-p", "1024",
+                             "-C", str(N_CH), "-P", "2"], stdout=log, stderr=subprocess.STDOUT, env=env)
+    deadline = time.monotonic() + 20
+    while "self-connect-mode" not in open(tmp_path / "jack.log").read():  # the server's ready line
+        if proc.poll() is not None or time.monotonic() > deadline:
+            proc.kill()
+            raise AssertionError("jackd did not start:\n" + open(tmp_path / "jack.log").read())
+        time.sleep(0.05)
+    try:
+        yield {"JACK_NO_AUDIO_RESERVATION": "1", "JACK_DEFAULT_SERVER": name}
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        try:
+            proc.wait(timeout=10)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+        log.close()
+
+
+@pytest.mark.skipif(not _portaudio_available(), reason="needs libportaudio2 (installed by .ci/run)")
+def test_paced_capture_through_jack_is_contiguous_and_on_time(tmp_path, virtual_card, jack_server):
+    """The same file PCM over an ALSA ``jack`` PCM, paced by a JACK dummy-driver server."""
+    home = virtual_card["HOME"]
+    rc = open(f"{home}/.asoundrc").read()
+    ports = "\n".join(f"        {i} system:capture_{i + 1}" for i in range(N_CH))
+    rc = rc.replace('slave.pcm "null"', 'slave.pcm "jackslave"')
+    rc = f"pcm.jackslave {{\n    type jack\n    capture_ports {{\n{ports}\n    }}\n}}\n" + rc
+    open(f"{home}/.asoundrc", "w").write(rc)
+    env = dict(virtual_card, **jack_server)
+    cfg = soundcard_config("arraycap").replace("ring_s = 0.5", "ring_s = 2.0")
+    with running_service(tmp_path, cfg, env=env) as svc:
+        with Subscriber(svc.publish, topics=["power", "audio", "beams"], timeout_s=20) as sub:
+            power, audio = [], []
+            while len(power) < 220 or len(audio) < 220 or sub.beams is None:
+                f = sub.recv()
+                (power if f.topic == "power" else audio if f.topic == "audio" else []).append(f)
+        with Controller(svc.control) as ctl:
+            st = ctl.status()
+    power, audio = power[10:], audio[10:]  # past the start-up transient
+    for frames in (power, audio):
+        assert np.all(np.diff([f.seq for f in frames]) == 1)
+        assert np.all(np.diff([f.first_sample for f in frames]) == 1024)
+        assert not any(f.gap for f in frames)
+    assert st["overflows"] == 0 and st["frames_lost"] == 0 and st["gaps"] == 0
+    # paced: 1024 frames per 21.3 ms of the server's clock
+    span = audio[-1].published_utc - audio[0].published_utc
+    assert span == pytest.approx((len(audio) - 1) * 1024 / FS, rel=0.05)
+    beams = sub.beams["power_deg"]
+    peaks = [beams[int(np.argmax(f.data[0]))][0] for f in power]
+    assert np.median(peaks) == pytest.approx(BEARING, abs=1.0)
+    # latency from the headers: capture of the earliest frame held -> publication (block + D + 5 ms)
+    d = audio[0].bulk_delay_samples
+    lat = [f.published_utc - (f.time_utc - d / FS) for f in audio]
+    assert np.median(lat) <= (1024 + d) / FS + 0.005
