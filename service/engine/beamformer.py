@@ -128,7 +128,16 @@ class _Steering:
             for b in beams.bands_hz]
         self.k1 = min(int(ev.bins[0]) for ev in self.bands)
         self.k2 = max(int(ev.bins[-1]) for ev in self.bands)
-        self.power = spectra(beams.power_deg, np.arange(self.k1, self.k2 + 1))
+        power_bins = np.arange(self.k1, self.k2 + 1)
+        self.power = spectra(beams.power_deg, power_bins)
+        self.pairs = None
+        mirror = _mirror_pairs(pos, gain, trims)
+        if mirror is not None:
+            units = unit_vectors(beams.power_deg[:, 0], beams.power_deg[:, 1])
+            w = shading.shading_weights(geometry.kind, geometry.positions_m, geometry.active, units,
+                                        beams.shading, beams.sidelobe_db, beams.nbar)
+            if np.allclose(w[:, mirror[0]], w[:, mirror[1]], rtol=1e-9, atol=0.0):
+                self.pairs, self.power = mirror, _paired(self.power, mirror, bulk_delay, n_fft, power_bins)
         n_audio = len(beams.audio_deg)
         self.audio = spectra(beams.audio_deg, np.arange(n_fft // 2 + 1)) if n_audio else None
         # Few audio beams × sensors: an element-wise product beats one tiny matrix
@@ -139,7 +148,60 @@ class _Steering:
 
     @property
     def nbytes(self) -> int:
-        return self.power.nbytes + (0 if self.audio is None else self.audio.nbytes)
+        power = self.power if self.pairs is None else self.power[0]
+        return power.nbytes + (0 if self.audio is None else self.audio.nbytes)
+
+    def power_spectra(self, spec: np.ndarray) -> np.ndarray:
+        """Steered power-band spectra, (bins, beams, K), from channel spectra (sensors, bins, K)."""
+        if self.pairs is None:
+            return np.matmul(self.power, np.ascontiguousarray(spec.transpose(1, 0, 2)))
+        ri, phase = self.power
+        pa, pb = self.pairs
+        s_sum = spec[pa] + spec[pb]
+        s_dif = spec[pa] - spec[pb]
+        n_pairs, n_bins, k = s_sum.shape
+        v = np.empty((n_bins, 2 * n_pairs, k, 2), np.float32)
+        v[:, :n_pairs, :, 0] = s_sum.real.transpose(1, 0, 2)
+        v[:, :n_pairs, :, 1] = s_sum.imag.transpose(1, 0, 2)
+        v[:, n_pairs:, :, 0] = -s_dif.imag.transpose(1, 0, 2)
+        v[:, n_pairs:, :, 1] = s_dif.real.transpose(1, 0, 2)
+        y = np.matmul(ri, v.reshape(n_bins, 2 * n_pairs, 2 * k)).view(np.complex64)
+        return y * phase[:, None, None]
+
+
+def _mirror_pairs(pos: np.ndarray, gain: np.ndarray, trims: np.ndarray):
+    """Index arrays (a, b) pairing each sensor with its mirror image through the
+    phase centre (same gain, opposite trim), or None when the array has no such
+    symmetry. A sensor at the centre pairs with itself."""
+    scale = max(float(np.max(np.abs(pos))), 1e-9)
+    dist = np.linalg.norm(pos[:, None, :] + pos[None, :, :], axis=-1)
+    partner = np.argmin(dist, axis=1)
+    m = np.arange(len(pos))
+    if (np.any(dist[m, partner] > 1e-9 * scale) or np.any(partner[partner] != m)
+            or not np.allclose(gain, gain[partner], rtol=1e-12, atol=0.0)
+            or np.any(np.abs(trims + trims[partner]) > 1e-15)):
+        return None
+    keep = m <= partner
+    return m[keep], partner[keep]
+
+
+def _paired(h: np.ndarray, pairs, bulk_delay: int, n_fft: int, bins: np.ndarray):
+    """Real matrices for mirror pairs (Van Trees 2002, §2.2: a symmetric array's
+    beam pattern is real about its phase centre).
+
+    With ``H_b = exp(-j w 2D) conj(H_a)`` for mirror sensors, the pair's term is
+    ``exp(-j w D) [R (X_a + X_b) + j I (X_a - X_b)]`` where ``R + jI =
+    exp(j w D) H_a``: two real products of half the size instead of one complex one.
+    """
+    pa, pb = pairs
+    omega = 2.0 * np.pi * bins / n_fft
+    q = h[:, :, pa] * np.exp(1j * omega * bulk_delay)[:, None, None]
+    centre = pa == pb
+    r, i = q.real.copy(), q.imag.copy()
+    r[:, :, centre] *= 0.5  # (X_a + X_b) counts a centre sensor twice
+    i[:, :, centre] = 0.0
+    ri = np.ascontiguousarray(np.concatenate([r, i], axis=2), dtype=np.float32)
+    return ri, np.exp(-1j * omega * bulk_delay).astype(np.complex64)
 
 
 def max_band_filter_taps(beams: BeamSet, samplerate_hz: float) -> int:
@@ -371,8 +433,7 @@ class Beamformer:
         spec = np.stack(self._pending_spec, axis=-1)  # (n_active, bins, K)
         starts = np.array(self._pending_start, np.int64)
         self._pending_start, self._pending_spec = [], []
-        y = np.matmul(steer.power, np.ascontiguousarray(spec.transpose(1, 0, 2)))  # (bins, beams, K)
-        y = y.transpose(2, 1, 0)  # (K, beams, bins)
+        y = steer.power_spectra(spec).transpose(2, 1, 0)  # (K, beams, bins)
         out = np.empty((len(starts), len(steer.bands), y.shape[1]), np.float32)
         for i, ev in enumerate(steer.bands):
             lo = int(ev.bins[0]) - steer.k1
