@@ -268,6 +268,8 @@ class Beamformer:
             geometry.max_steering_delay_s(self.sound_speed_mps), self.samplerate_hz)
         self._channels = geometry.active_channel_index
         self._n_active = len(self._channels)
+        # Every input channel feeds an active sensor, in order: no gather needed.
+        self._all_channels = bool(np.array_equal(self._channels, np.arange(geometry.n_input_channels)))
         self._steer = None
         self._fade_from = None  # (audio spectra, fade start sample)
         self._fft_size_for(beams)
@@ -385,7 +387,7 @@ class Beamformer:
         while pos < frames:
             to_boundary = self.block_frames - (self._sample - self._power_origin) % self.block_frames
             b = min(frames - pos, to_boundary)
-            frame = self._push(x[pos:pos + b, self._channels], n_fft)
+            frame = self._push(x[pos:pos + b] if self._all_channels else x[pos:pos + b, self._channels], n_fft)
             spec = sfft.rfft(frame, axis=1)  # (n_active, n_fft//2+1), one FFT serves both paths
             if n_audio:
                 audio[pos:pos + b] = self._audio(spec, b, n_fft)
