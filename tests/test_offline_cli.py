@@ -155,3 +155,28 @@ def test_pattern_csv(scene, tmp_path):
     u = np.cos(np.radians(az))
     near = (u > 0.05) & (u < 0.3)
     assert u[near][np.argmin(table["response_db"][near])] == pytest.approx(1 / 6, abs=0.002)
+
+
+def test_pattern_png_with_the_plot_extra(scene, tmp_path):
+    pytest.importorskip("matplotlib")
+    cfg, _ = scene
+    out = tmp_path / "p.png"
+    r = run("pattern", str(cfg), "--freq", "1000", "--out", str(out))
+    assert r.returncode == 0, r.stderr
+    assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_commands_without_portaudio(tmp_path):
+    """Without PortAudio, commands that do not touch a sound card work; one that does says
+    in one line which package to install."""
+    fake = tmp_path / "fake"
+    fake.mkdir()
+    (fake / "sounddevice.py").write_text("raise OSError('PortAudio library not found')\n")
+    env = dict(__import__("os").environ, PYTHONPATH=str(fake))
+    r = run("devices", env=env)
+    assert r.returncode == 2 and "libportaudio2" in r.stderr and r.stderr.count("\n") == 1
+    assert "Traceback" not in r.stderr
+    r = run("check", env=env)
+    assert r.returncode == 0 and "bulk delay" in r.stdout
+    r = run("--help", env=env)
+    assert r.returncode == 0

@@ -233,3 +233,26 @@ def test_session_replayed_offline_and_live_reproduces_the_live_beams(tmp_path):
                 got.append(sub.recv())
     firsts = np.array([f.first_sample for f in got])
     assert np.all(np.diff(firsts) == BLOCK)
+
+
+def test_standalone_record_from_the_stream_and_sigterm_closes_the_session(tmp_path):
+    rec = tmp_path / "rec"
+    with running_service(tmp_path, config(rec, segment_s=1.0, on_start=True)) as svc:
+        out = tmp_path / "remote"
+        r = subprocess.run([sys.executable, "-m", "beamtap", "record", "--endpoint", svc.publish, "--out", str(out),
+                            "--what", "raw", "audio", "power", "--segment-s", "1", "--seconds", "3"],
+                           capture_output=True, text=True, timeout=60)
+        assert r.returncode == 0, r.stderr
+        assert "wrote session" in r.stdout
+    # the remote session: contiguous raw segments, the manifest closed
+    recs = read_manifest(out)
+    assert recs[0]["type"] == "session" and recs[-1]["type"] == "stop"
+    segs = segments(out, "raw")
+    assert len(segs) >= 2 and all(s["closed"] for s in segs)
+    assert all(b["first_sample"] == a["first_sample"] + a["frames"] for a, b in zip(segs, segs[1:]))
+    assert segments(out, "power") and segments(out, "audio")
+    # the service's own session, closed cleanly by SIGTERM at the end of the with-block
+    local = rec / os.listdir(rec)[0]
+    last = read_manifest(local)[-1]
+    assert last["type"] == "stop" and last["reason"] == "service stopped"
+    assert all(s["closed"] for s in segments(local, "raw"))
