@@ -130,9 +130,8 @@ class Pipeline:
             if chunk is not None:
                 self._process(chunk)
             elif self.source.finished.is_set() and ring.available == 0:
-                self._release(self.engine.flush())
-                if not self._stop.wait(0.05):
-                    pass
+                self._release(self.engine.flush())  # a finite source ran out: release what is pending
+                self._stop.wait(0.05)
             if now >= next_status:
                 self.publish_status()
                 next_status = now + STATUS_INTERVAL_S
