@@ -116,11 +116,13 @@ class _Steering:
         gain = geometry.active_gain
         trims = geometry.active_trim_s
 
-        def spectra(directions_deg, bins):
+        def weights(directions_deg):
             units = unit_vectors(directions_deg[:, 0], directions_deg[:, 1])
+            return units, shading.shading_weights(geometry.kind, geometry.positions_m, geometry.active, units,
+                                                  beams.shading, beams.sidelobe_db, beams.nbar)
+
+        def spectra(units, w, bins):
             tau = steering.relative_delays_samples(pos, trims, units, sound_speed_mps, samplerate_hz)
-            w = shading.shading_weights(geometry.kind, geometry.positions_m, geometry.active, units,
-                                        beams.shading, beams.sidelobe_db, beams.nbar)
             return steering.steering_spectra(bulk_delay + tau, w * gain[None, :], n_fft, bins)
 
         self.bands = [bandpower.BandPowerEvaluator(
@@ -129,17 +131,14 @@ class _Steering:
         self.k1 = min(int(ev.bins[0]) for ev in self.bands)
         self.k2 = max(int(ev.bins[-1]) for ev in self.bands)
         power_bins = np.arange(self.k1, self.k2 + 1)
-        self.power = spectra(beams.power_deg, power_bins)
+        units, w = weights(beams.power_deg)
+        self.power = spectra(units, w, power_bins)
         self.pairs = None
         mirror = _mirror_pairs(pos, gain, trims)
-        if mirror is not None:
-            units = unit_vectors(beams.power_deg[:, 0], beams.power_deg[:, 1])
-            w = shading.shading_weights(geometry.kind, geometry.positions_m, geometry.active, units,
-                                        beams.shading, beams.sidelobe_db, beams.nbar)
-            if np.allclose(w[:, mirror[0]], w[:, mirror[1]], rtol=1e-9, atol=0.0):
-                self.pairs, self.power = mirror, _paired(self.power, mirror, bulk_delay, n_fft, power_bins)
+        if mirror is not None and np.allclose(w[:, mirror[0]], w[:, mirror[1]], rtol=1e-9, atol=0.0):
+            self.pairs, self.power = mirror, _paired(self.power, mirror, bulk_delay, n_fft, power_bins)
         n_audio = len(beams.audio_deg)
-        self.audio = spectra(beams.audio_deg, np.arange(n_fft // 2 + 1)) if n_audio else None
+        self.audio = spectra(*weights(beams.audio_deg), np.arange(n_fft // 2 + 1)) if n_audio else None
         # Few audio beams × sensors: an element-wise product beats one tiny matrix
         # product per bin (measured in bench/); keep the layout each method streams.
         self.audio_elementwise = bool(n_audio) and n_audio * pos.shape[0] <= _ELEMENTWISE_MAX
