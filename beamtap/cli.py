@@ -313,9 +313,11 @@ def main(argv=None) -> int:
     if not hasattr(args, "func"):
         parser.print_help()
         return 2
+    from beamtap.client.subscriber import EndpointError, ServiceError  # noqa: PLC0415 - light, numpy/zmq only
+
     try:
         return args.func(args) or 0
-    except UsageError as exc:
+    except (UsageError, EndpointError, ServiceError, TimeoutError) as exc:
         sys.stderr.write(f"beamtap {args.func.__name__[4:]}: error: {exc}\n")
         return 2
     except KeyboardInterrupt:

@@ -154,7 +154,10 @@ class WavWriter:
         self.samplerate_hz = int(round(samplerate_hz))
         self._width = 4 if sample_format == "float32" else 3
         self.frames = 0
-        self._f = open(self.path, "wb")
+        try:
+            self._f = open(self.path, "wb")
+        except OSError as exc:
+            raise UsageError(f"{self.path}: cannot write: {exc.strerror}") from None
         tag = IEEE_FLOAT if sample_format == "float32" else PCM
         align = self.channels * self._width
         # fmt chunk of 18 bytes (cbSize = 0) for float, 16 for PCM; a fact chunk is not needed by readers.

@@ -4,7 +4,8 @@ Imports only numpy, pyzmq and msgpack (sounddevice only for listening).
 """
 
 from .protocol import PROTOCOL_VERSION, ProtocolError
-from .subscriber import DEFAULT_CONTROL, DEFAULT_PUBLISH, Controller, Frame, ServiceError, Subscriber
+from .subscriber import (DEFAULT_CONTROL, DEFAULT_PUBLISH, Controller, EndpointError, Frame, ServiceError,
+                         Subscriber)
 
-__all__ = ["DEFAULT_CONTROL", "DEFAULT_PUBLISH", "PROTOCOL_VERSION", "Controller", "Frame", "ProtocolError",
-           "ServiceError", "Subscriber"]
+__all__ = ["DEFAULT_CONTROL", "DEFAULT_PUBLISH", "PROTOCOL_VERSION", "Controller", "EndpointError", "Frame",
+           "ProtocolError", "ServiceError", "Subscriber"]

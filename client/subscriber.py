@@ -23,6 +23,18 @@ DEFAULT_PUBLISH = "tcp://127.0.0.1:5560"
 DEFAULT_CONTROL = "tcp://127.0.0.1:5561"
 
 
+class EndpointError(ValueError):
+    """An endpoint ZeroMQ cannot use (malformed address, unknown transport)."""
+
+
+def _connect(sock, endpoint: str) -> None:
+    try:
+        sock.connect(endpoint)
+    except zmq.ZMQError as exc:
+        sock.close(linger=0)
+        raise EndpointError(f"endpoint {endpoint!r}: {exc.strerror}; expected e.g. 'tcp://127.0.0.1:5560'") from None
+
+
 @dataclass
 class Frame:
     """One message from the stream.
@@ -94,7 +106,7 @@ class Subscriber:
         self._sock = self._ctx.socket(zmq.SUB)
         self._sock.setsockopt(zmq.RCVHWM, int(queue))
         self._sock.setsockopt(zmq.LINGER, 0)
-        self._sock.connect(endpoint)
+        _connect(self._sock, endpoint)
         for t in topics:
             self._sock.setsockopt(zmq.SUBSCRIBE, t.encode())
         self._last_seq: dict = {}
@@ -189,7 +201,7 @@ class Controller:
         if self._sock is None:
             self._sock = self._ctx.socket(zmq.REQ)
             self._sock.setsockopt(zmq.LINGER, 0)
-            self._sock.connect(self.endpoint)
+            _connect(self._sock, self.endpoint)
         return self._sock
 
     def request(self, cmd: str, **kwargs) -> dict:

@@ -298,3 +298,13 @@ def test_demo_starts_service_and_view_and_stops_both(tmp_path):
     assert all(20.0 <= p <= 60.0 or 110.0 <= p <= 126.0 for p in peaks), peaks
     leftover = subprocess.run(["pgrep", "-f", "beamtap serve --publish tcp://127.0.0.1:5560"], capture_output=True)
     assert leftover.returncode == 1  # the demo's service is gone
+
+
+@pytest.mark.parametrize("args", [["tail", "--endpoint", "nonsense", "--count", "1"],
+                                  ["ctl", "--control", "udp:/bad", "status"],
+                                  ["watch", "--endpoint", "nonsense", "--seconds", "1"],
+                                  ["record", "--endpoint", "nonsense", "--out", "/tmp/never-made", "--seconds", "1"]])
+def test_malformed_endpoints_are_one_line_errors(args):
+    r = beamtap(*args)
+    assert r.returncode == 2
+    assert "endpoint" in r.stderr and "Traceback" not in r.stderr

@@ -180,3 +180,9 @@ def test_commands_without_portaudio(tmp_path):
     assert r.returncode == 0 and "bulk delay" in r.stdout
     r = run("--help", env=env)
     assert r.returncode == 0
+
+
+def test_unwritable_output_is_a_one_line_error(scene, tmp_path):
+    cfg, wav = scene
+    r = run("simulate", str(cfg), "--seconds", "1", "--out", str(tmp_path / "missing" / "x.wav"))
+    assert r.returncode == 2 and "cannot write" in r.stderr and r.stderr.count("\n") == 1
