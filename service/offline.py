@@ -28,9 +28,12 @@ from beamtap.wavfile import WavReader, WavWriter
 
 
 def make_beamformer(config: Config, beams=None) -> Beamformer:
-    """The engine as a config describes it."""
-    return Beamformer(config.geometry, config.sound_speed_mps, config.input.samplerate_hz,
-                      config.input.block_frames, beams or config.beams, config.power_batch_blocks)
+    """The engine as a config describes it (a set-up it cannot build is a usage error)."""
+    try:
+        return Beamformer(config.geometry, config.sound_speed_mps, config.input.samplerate_hz,
+                          config.input.block_frames, beams or config.beams, config.power_batch_blocks)
+    except ValueError as exc:
+        raise UsageError(f"{config.where}: [beams] {exc}") from None
 
 
 def make_scene(config: Config) -> Scene:

@@ -16,8 +16,8 @@ import time
 
 import numpy as np
 
-from .engine.beamformer import Beamformer, BeamSet
-from .offline import summary
+from .engine.beamformer import BeamSet
+from .offline import make_beamformer, summary
 
 log = logging.getLogger("beamtap.pipeline")
 
@@ -43,8 +43,7 @@ class Pipeline:
         inp = config.input
         self.block_frames = inp.block_frames
         self.samplerate_hz = inp.samplerate_hz
-        self.engine = Beamformer(config.geometry, config.sound_speed_mps, inp.samplerate_hz, inp.block_frames,
-                                 config.beams, config.power_batch_blocks)
+        self.engine = make_beamformer(config)
         self.bulk_delay = self.engine.bulk_delay_samples
         geo = config.geometry
         self._gain_cols = geo.active_channel_index

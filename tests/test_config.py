@@ -120,3 +120,15 @@ def test_mackenzie_range_warning_in_check():
     c = cfg.loads(_with("sound_speed_mps = 1500.0",
                         "water = { temperature_c = 35.0, salinity_psu = 35.0, depth_m = 10.0 }"), "warm.toml")
     assert len(c.medium.warnings) == 1 and "temperature_c=35" in c.medium.warnings[0]
+
+
+def test_too_much_steering_data_is_a_usage_error():
+    from beamtap.errors import UsageError
+    from beamtap.service.offline import make_beamformer
+
+    huge = _with("line = { count = 8, spacing_m = 0.5 }", "line = { count = 64, spacing_m = 0.5 }").replace(
+        "fan = { from_deg = 0.0, to_deg = 180.0, step_deg = 2.0 }",
+        "grid = { az_from_deg = 0.0, az_to_deg = 359.0, az_step_deg = 1.0, el_from_deg = -90.0, "
+        "el_to_deg = 90.0, el_step_deg = 4.0 }").replace("band_hz = [300.0, 1400.0]", "band_hz = [300.0, 3000.0]")
+    with pytest.raises(UsageError, match=r"huge.toml: \[beams\] 16560 power beams .* more than 512 MB"):
+        make_beamformer(cfg.loads(huge, "huge.toml"))

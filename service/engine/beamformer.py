@@ -31,6 +31,8 @@ from .geometry import ArrayGeometry
 
 #: Default audio crossfade after a retarget, seconds.
 CROSSFADE_S = 0.010
+#: Steering data larger than this is refused (beams × sensors × bins × 8 bytes).
+MAX_STEERING_BYTES = 512 * 2**20
 #: Largest audio beams × sensors product formed element-wise rather than by matrix products.
 _ELEMENTWISE_MAX = 128
 
@@ -131,6 +133,11 @@ class _Steering:
         self.k1 = min(int(ev.bins[0]) for ev in self.bands)
         self.k2 = max(int(ev.bins[-1]) for ev in self.bands)
         power_bins = np.arange(self.k1, self.k2 + 1)
+        need = 8 * pos.shape[0] * (len(beams.power_deg) * len(power_bins) + len(beams.audio_deg) * (n_fft // 2 + 1))
+        if need > MAX_STEERING_BYTES:
+            raise ValueError(f"{len(beams.power_deg)} power beams and {len(beams.audio_deg)} audio beams over "
+                             f"{pos.shape[0]} sensors need {need / 2**20:.0f} MB of steering data, more than "
+                             f"{MAX_STEERING_BYTES / 2**20:.0f} MB: use fewer beams or a narrower band")
         units, w = weights(beams.power_deg)
         self.power = spectra(units, w, power_bins)
         self.pairs = None
