@@ -92,10 +92,12 @@ class Pipeline:
         """
         prepared = self.engine.prepare(beams)
         done = threading.Event()
-        slot = {"beams": beams, "prepared": prepared, "done": done, "id": None}
+        slot = {"beams": beams, "prepared": prepared, "done": done, "id": None, "cancelled": False}
         self._retargets.put(slot, timeout=timeout)
         if not done.wait(timeout):
-            raise TimeoutError("the processing thread did not take the new beams in time")
+            slot["cancelled"] = True  # the caller is told it failed, so it must not happen later
+            if not done.is_set():
+                raise TimeoutError("the processing thread did not take the new beams in time")
         return slot["id"]
 
     # ---- thread --------------------------------------------------------
@@ -143,6 +145,8 @@ class Pipeline:
                 slot = self._retargets.get_nowait()
             except queue.Empty:
                 return
+            if slot["cancelled"]:
+                continue
             self._release(self.engine.apply(slot["prepared"]))
             self.beam_table_id += 1
             self.beam_table = self._beam_table(slot["beams"])
