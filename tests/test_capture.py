@@ -253,7 +253,14 @@ def test_file_source_as_fast_as_possible(tmp_path):
         with Controller(svc.control) as ctl:
             st = ctl.status()
     assert st["frames_lost"] == 0 and st["overflows"] == 0  # fast mode applies back-pressure
-    firsts = np.diff([f.first_sample for f in frames])
-    assert np.all(firsts == 1024)
+    assert not any(f.header["gap"] for f in frames)  # the service lost nothing
+    # Faster than real time, this subscriber may miss messages (seq jumps); where it did not, the
+    # stream is contiguous.
+    seq = np.array([f.seq for f in frames])
+    first = np.array([f.first_sample for f in frames])
+    consecutive = np.diff(seq) == 1
+    assert consecutive.sum() > 100
+    assert np.all(np.diff(first)[consecutive] == 1024)
+    assert np.all(np.diff(first) == 1024 * np.diff(seq))
     beams = sub.beams["power_deg"]
     assert np.median([beams[int(np.argmax(f.data[0]))][0] for f in frames]) == pytest.approx(33.0, abs=1.0)
