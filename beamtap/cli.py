@@ -112,7 +112,7 @@ def cmd_devices(args):
 def cmd_tail(args):
     from beamtap.client import tail  # noqa: PLC0415
 
-    return _client_call(lambda: tail.run(args.endpoint, args.topics, args.count, args.timeout))
+    return tail.run(args.endpoint, args.topics, args.count, args.timeout)
 
 
 def cmd_watch(args):
@@ -164,21 +164,11 @@ def cmd_record(args):
 
 
 def cmd_mark(args):
-    from beamtap.client import Controller, ServiceError  # noqa: PLC0415
+    from beamtap.client import Controller  # noqa: PLC0415
 
     with Controller(args.control, timeout_s=args.timeout) as ctl:
-        try:
-            m = ctl.mark(" ".join(args.text))
-        except ServiceError as exc:
-            raise UsageError(str(exc)) from None
+        m = ctl.mark(" ".join(args.text))
     print(f"mark at sample {m['sample']} ({m['utc_iso']}): {m['text']}")
-
-
-def _client_call(fn):
-    try:
-        return fn()
-    except TimeoutError as exc:
-        raise UsageError(str(exc)) from None
 
 
 COMMANDS = {}

@@ -22,7 +22,6 @@ from __future__ import annotations
 
 import json
 import os
-import signal
 import subprocess
 import sys
 import tempfile
@@ -34,6 +33,7 @@ import zmq
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from beamtap.client.protocol import decode  # noqa: E402
+from beamtap.processes import stop  # noqa: E402
 
 HERE = Path(__file__).resolve().parent
 FS, BLOCK = 48000, 1024
@@ -116,8 +116,7 @@ def run_case(n_subscribers: int, seconds: float, folder: Path) -> dict:
         if others is not None:
             counts += [int(c) for c in others.communicate(timeout=60)[0].split()]
     finally:
-        proc.send_signal(signal.SIGTERM)
-        proc.wait(timeout=10)
+        stop(proc)
     lat_pub, lat_recv = 1e3 * np.array(lat_pub), 1e3 * np.array(lat_recv)
     budget = 1e3 * (BLOCK + d) / FS + 5.0
     return {

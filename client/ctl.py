@@ -6,7 +6,7 @@ import json
 
 from beamtap.errors import UsageError
 
-from .subscriber import Controller, ServiceError
+from .subscriber import Controller
 
 
 def _parse_pairs(texts, what):
@@ -53,32 +53,29 @@ def beams_change(args) -> dict:
 
 def run(args) -> int:
     with Controller(args.control, timeout_s=args.timeout) as ctl:
-        try:
-            if args.what == "status":
-                reply = ctl.request("status")
-                text = _status_text(reply["status"])
-            elif args.what == "config":
-                reply = ctl.request("config")
-                text = reply["text"].rstrip() + "\n\n# beams in force (table %d):\n%s" % (
-                    reply["beam_table"], reply["beams_toml"])
-            elif args.what == "beams":
-                change = beams_change(args)
-                reply = ctl.request("beams", set=change) if change else ctl.request("beams")
-                b = reply["beams"]
-                text = (f"beam table {reply.get('beam_table', reply.get('table', {}).get('beam_table'))}: "
-                        f"{len(b['directions_deg'])} power beams "
-                        f"({b['directions_deg'][0][0]:g}° … {b['directions_deg'][-1][0]:g}°), "
-                        f"audio {b['audio_deg']}, shading {b['shading']}, bands {b['band_hz']}")
-            elif args.what == "record":
-                reply = ctl.request("record", action=args.action, **({"what": args.kinds} if args.kinds else {}),
-                                    **({"label": args.label} if args.label else {}))
-                text = _record_text(reply["record"])
-            else:  # mark
-                reply = ctl.request("mark", text=" ".join(args.text))
-                m = reply["mark"]
-                text = f"mark at sample {m['sample']} ({m['utc_iso']}): {m['text']}"
-        except ServiceError as exc:
-            raise UsageError(f"ctl {args.what}: {exc}") from None
+        if args.what == "status":
+            reply = ctl.request("status")
+            text = _status_text(reply["status"])
+        elif args.what == "config":
+            reply = ctl.request("config")
+            text = reply["text"].rstrip() + "\n\n# beams in force (table %d):\n%s" % (
+                reply["beam_table"], reply["beams_toml"])
+        elif args.what == "beams":
+            change = beams_change(args)
+            reply = ctl.request("beams", set=change) if change else ctl.request("beams")
+            b = reply["beams"]
+            text = (f"beam table {reply.get('beam_table', reply.get('table', {}).get('beam_table'))}: "
+                    f"{len(b['directions_deg'])} power beams "
+                    f"({b['directions_deg'][0][0]:g}° … {b['directions_deg'][-1][0]:g}°), "
+                    f"audio {b['audio_deg']}, shading {b['shading']}, bands {b['band_hz']}")
+        elif args.what == "record":
+            reply = ctl.request("record", action=args.action, **({"what": args.kinds} if args.kinds else {}),
+                                **({"label": args.label} if args.label else {}))
+            text = _record_text(reply["record"])
+        else:  # mark
+            reply = ctl.request("mark", text=" ".join(args.text))
+            m = reply["mark"]
+            text = f"mark at sample {m['sample']} ({m['utc_iso']}): {m['text']}"
     print(json.dumps(reply, indent=2, default=str) if args.json else text)
     return 0
 

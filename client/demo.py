@@ -2,15 +2,13 @@
 
 from __future__ import annotations
 
-import json
 import os
-import signal
 import subprocess
 import sys
 import tempfile
-import time
 
 from beamtap.errors import UsageError
+from beamtap.processes import stop, wait_ready
 
 from . import watch
 from .subscriber import DEFAULT_CONTROL, DEFAULT_PUBLISH
@@ -21,16 +19,10 @@ def _start_service(publish: str, control: str, folder: str):
     log = open(os.path.join(folder, "service.log"), "w")
     proc = subprocess.Popen([sys.executable, "-m", "beamtap", "serve", "--publish", publish, "--control", control,
                              "--ready-file", ready, "--log-level", "WARNING"], stdout=log, stderr=subprocess.STDOUT)
-    deadline = time.monotonic() + 60
-    while not os.path.exists(ready):
-        if proc.poll() is not None:
-            return proc, None
-        if time.monotonic() > deadline:
-            proc.kill()
-            raise UsageError("demo: the service did not start within 60 s")
-        time.sleep(0.05)
-    with open(ready) as f:
-        return proc, json.load(f)
+    try:
+        return proc, wait_ready(proc, ready, 60.0)
+    except TimeoutError:
+        raise UsageError("demo: the service did not start within 60 s") from None
 
 
 def run(rate_hz: float, force_ascii: bool, seconds: float | None) -> int:
@@ -46,9 +38,4 @@ def run(rate_hz: float, force_ascii: bool, seconds: float | None) -> int:
         try:
             return watch.run(endpoints["publish"], rate_hz, 0, 30.0, force_ascii, seconds)
         finally:
-            proc.send_signal(signal.SIGTERM)
-            try:
-                proc.wait(timeout=5)
-            except subprocess.TimeoutExpired:
-                proc.kill()
-                proc.wait()
+            stop(proc, 5.0)

@@ -61,15 +61,12 @@ def from_live(endpoint: str, seconds: float, band: int = 0):
     beams = None
     with Subscriber(endpoint, topics=["power", "beams"], timeout_s=10.0) as sub:
         end = time.monotonic() + seconds
-        try:
-            while time.monotonic() < end or sub.beams is None:
-                f = sub.recv()
-                if f.topic == "power" and f.data is not None:
-                    rows.append(np.array(f.data[min(band, f.data.shape[0] - 1)]))
-                    times.append(f.time_utc)
-                beams = sub.beams
-        except TimeoutError as exc:
-            raise UsageError(str(exc)) from None
+        while time.monotonic() < end or sub.beams is None:
+            f = sub.recv()
+            if f.topic == "power" and f.data is not None:
+                rows.append(np.array(f.data[min(band, f.data.shape[0] - 1)]))
+                times.append(f.time_utc)
+            beams = sub.beams
     n = len(beams["power_deg"])
     keep = [i for i, r in enumerate(rows) if len(r) == n]
     data = np.array([rows[i] for i in keep])

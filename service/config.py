@@ -457,6 +457,14 @@ def _beams(t: _Table, fs: float):
                    transition), batch
 
 
+def parse_beams(data: dict, where: str, key: str, samplerate_hz: float):
+    """Validate a map of ``[beams]`` keys (from a file or a control request).
+
+    Returns ``(BeamSet, power_batch_blocks)``; raises ConfigError naming ``where`` and ``key.…``.
+    """
+    return _beams(_Table(data, where, key), samplerate_hz)
+
+
 def _directions(t: _Table, name: str, allow_empty: bool, default=_REQUIRED):
     v = t.pairs(name, default, expected="a list of [azimuth_deg, elevation_deg] pairs")
     if not v and not allow_empty:

@@ -169,8 +169,7 @@ class ControlServer:
         if any(k in change for k in ("fan", "directions_deg", "grid")):
             merged.pop("directions_deg")
         merged.update(change)
-        table = cfg._Table(merged, "beams request", "set")
-        beams, batch = cfg._beams(table, p.samplerate_hz)
+        beams, batch = cfg.parse_beams(merged, "beams request", "set", p.samplerate_hz)
         if batch != p.engine.power_batch_blocks:
             raise RequestError("set.power_batch_blocks cannot change while running")
         try:

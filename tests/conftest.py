@@ -47,12 +47,12 @@ def rng():
 # Running the service the way a user does: a subprocess on loopback.
 # ---------------------------------------------------------------------------
 import contextlib  # noqa: E402
-import json  # noqa: E402
 import os  # noqa: E402
-import signal  # noqa: E402
 import subprocess  # noqa: E402
 import sys  # noqa: E402
 import time  # noqa: E402
+
+from beamtap.processes import stop, wait_ready  # noqa: E402
 
 
 class RunningService:
@@ -97,25 +97,17 @@ def running_service(tmp_path, config_text=None, extra_args=(), env=None, expect_
     full_env = dict(os.environ, **(env or {}))
     with open(log_path, "w") as log:
         proc = subprocess.Popen(args, stdout=log, stderr=subprocess.STDOUT, env=full_env)
-    deadline = time.monotonic() + startup_s
-    while not ready.exists():
-        if proc.poll() is not None:
-            raise AssertionError(f"service exited with {proc.returncode}:\n{open(log_path).read()}")
-        if time.monotonic() > deadline:
-            proc.kill()
-            raise AssertionError(f"service not ready in {startup_s} s:\n{open(log_path).read()}")
-        time.sleep(0.05)  # polling for the ready file, not standing in for synchronisation
-    service = RunningService(proc, json.loads(ready.read_text()), log_path)
+    try:
+        endpoints = wait_ready(proc, ready, startup_s)
+    except TimeoutError:
+        raise AssertionError(f"service not ready in {startup_s} s:\n{open(log_path).read()}") from None
+    if endpoints is None:
+        raise AssertionError(f"service exited with {proc.returncode}:\n{open(log_path).read()}")
+    service = RunningService(proc, endpoints, log_path)
     try:
         yield service
     finally:
-        if proc.poll() is None:
-            proc.send_signal(signal.SIGTERM)
-            try:
-                proc.wait(timeout=10)
-            except subprocess.TimeoutExpired:
-                proc.kill()
-                proc.wait()
+        stop(proc)
     if expect_rc is not None:
         assert proc.returncode == expect_rc, open(log_path).read()
 
@@ -142,3 +134,66 @@ def line_config(count=16, spacing_m=0.5, samplerate_hz=48000, block_frames=1024,
             f"{input_extra}\n{entries}"
             f"[beams]\nfan = {{ from_deg = {fan[0]}, to_deg = {fan[1]}, step_deg = {fan[2]} }}\n"
             f"band_hz = {toml(list(band_hz))}\n{audio}{extra}\n")
+
+
+def collect_power(sub, count):
+    """At least ``count`` power frames, and until the subscriber has seen a beam table."""
+    frames = []
+    while len(frames) < count or sub.beams is None:
+        f = sub.recv()
+        if f.topic == "power":
+            frames.append(f)
+    return frames
+
+
+def run_in_pty(args, env, timeout_s, send=None, after_s=None, size=(40, 120)):
+    """Run ``python -m beamtap *args`` on a pseudo-terminal of ``size`` (rows, columns) until it exits.
+
+    Returns (status, output bytes, terminal modes before, terminal modes after). ``send`` is
+    written to the terminal once ``after_s`` seconds have passed. The output is drained all
+    along, or the program would block writing to the terminal.
+    """
+    import fcntl
+    import pty
+    import select
+    import struct
+    import termios
+
+    master, slave = pty.openpty()
+    os.set_blocking(master, False)
+    fcntl.ioctl(slave, termios.TIOCSWINSZ, struct.pack("HHHH", size[0], size[1], 0, 0))
+    before = termios.tcgetattr(slave)
+    proc = subprocess.Popen([sys.executable, "-m", "beamtap", *args], stdin=slave, stdout=slave, stderr=slave,
+                            env=env, close_fds=True)
+    out = b""
+    start = time.monotonic()
+    try:
+        while proc.poll() is None and time.monotonic() - start < timeout_s:
+            r, _, _ = select.select([master], [], [], 0.1)
+            if r:
+                try:
+                    out += os.read(master, 65536)
+                except OSError:
+                    break
+            if send is not None and time.monotonic() - start >= after_s:
+                os.write(master, send)
+                send = None
+        rc = proc.wait(timeout=5)
+        while True:
+            r, _, _ = select.select([master], [], [], 0.2)
+            if not r:
+                break
+            try:
+                chunk = os.read(master, 65536)
+            except OSError:
+                break
+            if not chunk:
+                break
+            out += chunk
+        after = termios.tcgetattr(slave)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+        os.close(slave)
+        os.close(master)
+    return rc, out, before, after

@@ -6,7 +6,7 @@ import pytest
 
 from beamtap.client import Controller, Subscriber
 
-from conftest import broadband_plane_wave, line_config, running_service
+from conftest import broadband_plane_wave, collect_power, line_config, running_service
 
 FS = 48000
 N_CH = 8
@@ -15,7 +15,7 @@ BEARING = 117.0
 
 def _portaudio_available():
     try:
-        import sounddevice  # noqa: F401
+        import sounddevice  # noqa: F401 - probing for PortAudio
     except OSError:
         return False
     return True
@@ -68,11 +68,7 @@ pcm.arraycap {{
 def test_capture_from_virtual_alsa_card_points_at_the_plane_wave(tmp_path, virtual_card):
     with running_service(tmp_path, soundcard_config("arraycap"), env=virtual_card) as svc:
         with Subscriber(svc.publish, topics=["power", "beams"], timeout_s=20) as sub:
-            frames = []
-            while len(frames) < 30 or sub.beams is None:
-                f = sub.recv()
-                if f.topic == "power":
-                    frames.append(f)
+            frames = collect_power(sub, 30)
         with Controller(svc.control) as ctl:
             st = ctl.status()
     assert "sound card 'arraycap'" in st["source"]
@@ -116,11 +112,7 @@ def test_beam_worker_on_another_services_raw_stream_and_upstream_restart_is_a_ga
         port = up.publish
         with running_service(down_dir, downstream(port)) as down:
             with Subscriber(down.publish, topics=["power", "beams"], timeout_s=20) as sub:
-                frames = []
-                while len(frames) < 40 or sub.beams is None:
-                    f = sub.recv()
-                    if f.topic == "power":
-                        frames.append(f)
+                frames = collect_power(sub, 40)
                 beams = sub.beams["power_deg"]
                 peaks = [beams[int(np.argmax(f.data[0]))][0] for f in frames[5:]]
                 assert np.median(peaks) == pytest.approx(48.0, abs=2.0)
@@ -149,9 +141,10 @@ def jack_server(tmp_path):
     """A private JACK server with the dummy driver (paces capture in real time)."""
     import os
     import shutil
-    import signal
     import subprocess
     import time
+
+    from beamtap.processes import stop
 
     if not shutil.which("jackd"):
         pytest.skip("needs jackd2 (installed by .ci/run)")
@@ -169,11 +162,7 @@ def jack_server(tmp_path):
     try:
         yield {"JACK_NO_AUDIO_RESERVATION": "1", "JACK_DEFAULT_SERVER": name}
     finally:
-        proc.send_signal(signal.SIGTERM)
-        try:
-            proc.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            proc.kill()
+        stop(proc)
         log.close()
 
 
@@ -245,11 +234,7 @@ def test_file_source_as_fast_as_possible(tmp_path):
                       input_extra=f'path = "{wav}"\nrealtime = false\nloop = true')
     with running_service(tmp_path, cfg) as svc:
         with Subscriber(svc.publish, topics=["power", "beams"], timeout_s=20) as sub:
-            frames = []
-            while len(frames) < 200 or sub.beams is None:
-                f = sub.recv()
-                if f.topic == "power":
-                    frames.append(f)
+            frames = collect_power(sub, 200)
         with Controller(svc.control) as ctl:
             st = ctl.status()
     assert st["frames_lost"] == 0 and st["overflows"] == 0  # fast mode applies back-pressure

@@ -2,21 +2,16 @@
 
 import json
 import os
-import pty
 import re
-import select
 import subprocess
 import sys
-import termios
-import time
 
 import numpy as np
 import pytest
 
 from beamtap.client import Controller
-from beamtap.client.tail import format_line
 
-from conftest import line_config, running_service
+from conftest import line_config, run_in_pty, running_service
 
 SCENE = line_config(input_extra="scene_noise_db = -50.0",
                     scene=[{"azimuth_deg": 52.0, "signal": "noise", "band_hz": [300.0, 1400.0], "level_db": -20.0}],
@@ -72,48 +67,10 @@ def test_ctl_without_service_is_a_clear_error():
     assert r.returncode == 2 and "no reply" in r.stderr
 
 
-def _read_pty(fd, seconds):
-    out = b""
-    end = time.monotonic() + seconds
-    while time.monotonic() < end:
-        r, _, _ = select.select([fd], [], [], 0.1)
-        if r:
-            try:
-                chunk = os.read(fd, 65536)
-            except OSError:
-                break
-            if not chunk:
-                break
-            out += chunk
-    return out
-
-
 def test_watch_in_a_pseudo_terminal_marks_the_peak_and_restores_the_terminal(svc):
-    master, slave = pty.openpty()
-    os.set_blocking(master, False)
-    # a 120 × 40 terminal
-    import fcntl
-    import struct
-
-    fcntl.ioctl(slave, termios.TIOCSWINSZ, struct.pack("HHHH", 40, 120, 0, 0))
-    before = termios.tcgetattr(slave)
     env = dict(os.environ, TERM="xterm-256color", PYTHONIOENCODING="utf-8")
-    proc = subprocess.Popen([sys.executable, "-m", "beamtap", "watch", "--endpoint", svc.publish, "--rate", "10"],
-                            stdin=slave, stdout=slave, stderr=slave, env=env, close_fds=True)
-    try:
-        out = _read_pty(master, 5.0)
-        os.write(master, b"q")
-        end = time.monotonic() + 10
-        while proc.poll() is None and time.monotonic() < end:
-            out += _read_pty(master, 0.2)  # keep draining, or the view blocks writing
-        rc = proc.wait(timeout=1)
-        out += _read_pty(master, 0.3)
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-    after = termios.tcgetattr(slave)
-    os.close(slave)
-    os.close(master)
+    rc, out, before, after = run_in_pty(["watch", "--endpoint", svc.publish, "--rate", "10"], env, 15.0,
+                                        send=b"q", after_s=5.0)
     assert rc == 0
     text = out.decode("utf-8", "replace")
     peaks = [float(m) for m in re.findall(r"peak (-?\d+\.\d)°", text)]
@@ -127,18 +84,8 @@ def test_watch_in_a_pseudo_terminal_marks_the_peak_and_restores_the_terminal(svc
 
 
 def test_watch_falls_back_to_plain_characters(svc):
-    master, slave = pty.openpty()
-    os.set_blocking(master, False)
     env = dict(os.environ, TERM="dumb", PYTHONIOENCODING="ascii")
-    proc = subprocess.Popen([sys.executable, "-m", "beamtap", "watch", "--endpoint", svc.publish, "--seconds", "3"],
-                            stdin=slave, stdout=slave, stderr=slave, env=env, close_fds=True)
-    out = b""
-    end = time.monotonic() + 15
-    while proc.poll() is None and time.monotonic() < end:
-        out += _read_pty(master, 0.2)
-    rc = proc.wait(timeout=1)
-    os.close(slave)
-    os.close(master)
+    rc, out, _, _ = run_in_pty(["watch", "--endpoint", svc.publish, "--seconds", "3"], env, 15.0)
     assert rc == 0
     text = out.decode("ascii", "replace")
     assert "\x1b[48;5;" not in text and "#" in text
@@ -277,18 +224,8 @@ def test_subscriber_reports_sequence_and_sample_jumps_as_gaps():
 
 
 def test_demo_starts_service_and_view_and_stops_both(tmp_path):
-    master, slave = pty.openpty()
-    os.set_blocking(master, False)
     env = dict(os.environ, TERM="xterm-256color", PYTHONIOENCODING="utf-8")
-    proc = subprocess.Popen([sys.executable, "-m", "beamtap", "demo", "--seconds", "6"], stdin=slave, stdout=slave,
-                            stderr=slave, env=env, close_fds=True)
-    out = b""
-    end = time.monotonic() + 60
-    while proc.poll() is None and time.monotonic() < end:
-        out += _read_pty(master, 0.2)
-    rc = proc.wait(timeout=5)
-    os.close(slave)
-    os.close(master)
+    rc, out, _, _ = run_in_pty(["demo", "--seconds", "6"], env, 60.0)
     text = out.decode("utf-8", "replace")
     assert rc == 0
     assert "demo: service publishing on" in text

@@ -3,7 +3,6 @@ write errors, marks, and replay of a session through the same engine."""
 
 import json
 import os
-import re
 import resource
 import signal
 import subprocess
@@ -11,7 +10,6 @@ import sys
 import time
 
 import numpy as np
-import pytest
 from scipy.io import wavfile
 
 from beamtap.client import Controller, Subscriber

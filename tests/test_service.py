@@ -2,7 +2,6 @@
 
 import time
 
-import msgpack
 import numpy as np
 import pytest
 import zmq

@@ -25,7 +25,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.fft as sfft
 
-from . import bandpower, fracdelay, shading, steering
+from . import bandpower, shading, steering
 from .directions import unit_vectors
 from .geometry import ArrayGeometry
 
@@ -276,9 +276,6 @@ class Beamformer:
         self._n_active = len(self._channels)
         # Every input channel feeds an active sensor, in order: no gather needed.
         self._all_channels = bool(np.array_equal(self._channels, np.arange(geometry.n_input_channels)))
-        self._steer = None
-        self._fade_from = None  # (audio spectra, fade start sample)
-        self._fft_size_for(beams)
         self._steer = self._build(beams)
         self.reset(0)
 
