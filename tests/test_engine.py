@@ -141,9 +141,14 @@ def test_full_scale_sine_reads_minus_3_db():
     assert np.mean(r.power_db[8:, 0, 0]) == pytest.approx(-3.0103 + 20 * np.log10(0.999), abs=0.02)
 
 
-def test_block_invariance(rng):
-    geo = ArrayGeometry.line(8, 0.5, dead=np.array([0, 0, 1, 0, 0, 0, 0, 0], bool))
-    every_sensor = geo.positions_m - geo.phase_centre_m  # the dead one still delivers a channel
+@pytest.mark.parametrize("geo", [
+    ArrayGeometry.line(8, 0.5, dead=np.array([0, 0, 1, 0, 0, 0, 0, 0], bool)),
+    # large symmetric array (mirror-pair rows), wired in reverse channel order
+    ArrayGeometry.line(64, 0.25, channels=np.arange(64, 0, -1)),
+], ids=["line8-dead", "line64-pairs-rewired"])
+def test_block_invariance(rng, geo):
+    every_sensor = np.zeros((geo.n_input_channels, 3))  # dead sensors still deliver a channel
+    every_sensor[geo.channels - 1] = geo.positions_m - geo.phase_centre_m
     x, _ = broadband_plane_wave(every_sensor, C, FS, 50.0, 0.2 * rng.standard_normal(12000))
     beams = BeamSet(fan(0, 180, 5), [[50.0, 0.0], [120.0, 0.0]], shading="hann", bands_hz=[(300, 3000)])
     whole = Beamformer(geo, C, FS, 1024, beams).process(x)
@@ -285,19 +290,26 @@ def test_broadband_bearing_grid_in_azimuth_and_elevation(rng):
     assert (az, el) == (pytest.approx(136.0, abs=2.0), pytest.approx(38.0, abs=2.0))
 
 
-def test_mirror_pair_path_equals_general_path(rng):
-    """The real two-product form for symmetric arrays gives the general complex product's power."""
-    sym = ArrayGeometry.line(16, 0.5)
+@pytest.mark.parametrize("make", [lambda: ArrayGeometry.line(64, 0.5), lambda: ArrayGeometry.line(65, 0.5),
+                                  lambda: ArrayGeometry.ring(64, 4.0)], ids=["line64", "line65-centre", "ring64"])
+def test_mirror_pair_path_equals_general_path(rng, make):
+    """The real two-product form on mirror-pair rows (large symmetric arrays) gives the general
+    complex product's power and audio (a consistency check of two forms of the same sum)."""
+    sym = make()
     nudged = sym.positions_m.copy()
-    nudged[3, 1] += 1e-7  # breaks the mirror symmetry by 0.1 µm (7e-11 s): the general path
-    general = ArrayGeometry(nudged, kind="line", spacing_m=0.5)
-    x, _ = broadband_plane_wave(sym.centred_positions_m, C, FS, 57.0, 0.1 * rng.standard_normal(1 << 14))
-    beams = BeamSet(fan(0, 180, 1), shading="taylor", bands_hz=[(300, 1400), (1400, 3000)])
+    nudged[3, 2] += 1e-7  # breaks the mirror symmetry by 0.1 µm (7e-11 s): the general path
+    general = ArrayGeometry(nudged, kind=sym.kind, spacing_m=sym.spacing_m)
+    x, _ = broadband_plane_wave(sym.centred_positions_m, C, FS, 57.0, 0.1 * rng.standard_normal(1 << 13))
+    beams = BeamSet(fan(0, 180, 2), [[57.0, 0.0], [120.0, 0.0], [10.0, 0.0]], shading="taylor",
+                    bands_hz=[(300, 1400), (1400, 3000)])
     a = Beamformer(sym, C, FS, 1024, beams)
     b = Beamformer(general, C, FS, 1024, beams)
-    assert a._steer[0].pairs is not None and b._steer[0].pairs is None
-    pa, pb = a.process(x).power_db, b.process(x).power_db
-    assert np.max(np.abs(pa - pb)) < 1e-3
+    for product in ("power", "audio"):
+        assert getattr(a._steer[0], product).real_form and not getattr(b._steer[0], product).real_form
+    ra, rb = a.process(x), b.process(x)
+    assert np.max(np.abs(ra.power_db - rb.power_db)) < 1e-3
+    # float32 products of different shapes: agreement to a few float32 roundings of the signal scale
+    assert np.max(np.abs(ra.audio - rb.audio)) < 1e-5 * np.max(np.abs(rb.audio))
 
 
 def test_line_aliasing_warning_follows_the_spacing_rule():

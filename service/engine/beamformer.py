@@ -35,6 +35,8 @@ CROSSFADE_S = 0.010
 MAX_STEERING_BYTES = 512 * 2**20
 #: Largest audio beams × sensors product formed element-wise rather than by matrix products.
 _ELEMENTWISE_MAX = 128
+#: Fewest sensors for which the mirror-pair rows pay for their extra pass over each block.
+_PAIR_BASIS_MIN_SENSORS = 48
 
 
 @dataclass(frozen=True)
@@ -109,24 +111,69 @@ class BlockResult:
     clip_count: int = 0
 
 
+class _Basis:
+    """The rows the history buffer holds: sensor signals, or sums and
+    differences of mirror pairs.
+
+    For an array symmetric through its phase centre (every sensor has a
+    mirror image with the same gain and opposite trim) the rows are
+    ``x_a + x_b`` for every pair (a centre sensor alone: ``x_c``) followed by
+    ``x_a - x_b`` for every pair of two sensors. Forming them in the time
+    domain costs one pass over the block and lets every symmetric beam be
+    steered by real products of half the size (:func:`_paired`); any other
+    beam is steered in the same rows by :meth:`transform`.
+    """
+
+    def __init__(self, geometry: ArrayGeometry):
+        channels = geometry.active_channel_index
+        pairs = _mirror_pairs(geometry.centred_positions_m, geometry.active_gain, geometry.active_trim_s)
+        if len(channels) < _PAIR_BASIS_MIN_SENSORS:
+            pairs = None
+        self.pairs = pairs
+        # Every input channel feeds an active sensor, in order: no gather needed.
+        self._cols = None if np.array_equal(channels, np.arange(geometry.n_input_channels)) else channels
+        if pairs is None:
+            self.n_rows = len(channels)
+            return
+        pa, pb = pairs
+        two = pa != pb
+        self.n_sums, self.n_rows = len(pa), len(pa) + int(two.sum())
+        # Row indices into the active sensors; slices where they run in steps of one (a line array).
+        self._sa, self._sb = _as_index(pa), _as_index(pb)
+        self._da, self._db = _as_index(pa[two]), _as_index(pb[two])
+        self._centre = np.nonzero(~two)[0]
+
+    def write(self, out: np.ndarray, chunk: np.ndarray) -> None:
+        """Rows (n_rows, frames) of ``out`` from input frames ``chunk`` (frames, channels)."""
+        if self.pairs is None:
+            out[:] = (chunk if self._cols is None else chunk[:, self._cols]).T
+            return
+        x = np.ascontiguousarray((chunk if self._cols is None else chunk[:, self._cols]).T)  # (sensors, frames)
+        sums = out[:self.n_sums]
+        np.add(x[self._sa], x[self._sb], out=sums)
+        if len(self._centre):
+            sums[self._centre] *= 0.5
+        np.subtract(x[self._da], x[self._db], out=out[self.n_sums:])
+
+    def transform(self, h: np.ndarray) -> np.ndarray:
+        """Steering (..., sensors) on sensor signals -> the same sum on the rows."""
+        if self.pairs is None:
+            return h
+        pa, pb = self.pairs
+        two = pa != pb
+        # x_a = (s + d) / 2 and x_b = (s - d) / 2 for a pair; x_c = s for a centre sensor (a = b).
+        return np.concatenate([0.5 * (h[..., pa] + h[..., pb]), 0.5 * (h[..., pa[two]] - h[..., pb[two]])], axis=-1)
+
+
 class _Steering:
     """Precomputed steering data for one beam set (built off the hot path)."""
 
-    def __init__(self, geometry, sound_speed_mps, samplerate_hz, bulk_delay, n_fft, valid, beams: BeamSet):
+    def __init__(self, geometry, basis: _Basis, sound_speed_mps, samplerate_hz, bulk_delay, n_fft, valid,
+                 beams: BeamSet):
         self.beams = beams
         pos = geometry.centred_positions_m
         gain = geometry.active_gain
         trims = geometry.active_trim_s
-
-        def weights(directions_deg):
-            units = unit_vectors(directions_deg[:, 0], directions_deg[:, 1])
-            return units, shading.shading_weights(geometry.kind, geometry.positions_m, geometry.active, units,
-                                                  beams.shading, beams.sidelobe_db, beams.nbar)
-
-        def spectra(units, w, bins):
-            tau = steering.relative_delays_samples(pos, trims, units, sound_speed_mps, samplerate_hz)
-            return steering.steering_spectra(bulk_delay + tau, w * gain[None, :], n_fft, bins)
-
         self.bands = [bandpower.BandPowerEvaluator(
             bandpower.design_band_filter(b, samplerate_hz, beams.transition_hz), n_fft, valid)
             for b in beams.bands_hz]
@@ -138,41 +185,78 @@ class _Steering:
             raise ValueError(f"{len(beams.power_deg)} power beams and {len(beams.audio_deg)} audio beams over "
                              f"{pos.shape[0]} sensors need {need / 2**20:.0f} MB of steering data, more than "
                              f"{MAX_STEERING_BYTES / 2**20:.0f} MB: use fewer beams or a narrower band")
-        units, w = weights(beams.power_deg)
-        self.power = spectra(units, w, power_bins)
-        self.pairs = None
-        mirror = _mirror_pairs(pos, gain, trims)
-        if mirror is not None and np.allclose(w[:, mirror[0]], w[:, mirror[1]], rtol=1e-9, atol=0.0):
-            self.pairs, self.power = mirror, _paired(self.power, mirror, bulk_delay, n_fft, power_bins)
-        n_audio = len(beams.audio_deg)
-        self.audio = spectra(*weights(beams.audio_deg), np.arange(n_fft // 2 + 1)) if n_audio else None
-        # Few audio beams × sensors: an element-wise product beats one tiny matrix
-        # product per bin (measured in bench/); keep the layout each method streams.
-        self.audio_elementwise = bool(n_audio) and n_audio * pos.shape[0] <= _ELEMENTWISE_MAX
-        if self.audio_elementwise:
-            self.audio = np.ascontiguousarray(self.audio.transpose(1, 2, 0))  # (beams, sensors, bins)
+
+        def product(directions_deg, bins):
+            units = unit_vectors(directions_deg[:, 0], directions_deg[:, 1])
+            w = shading.shading_weights(geometry.kind, geometry.positions_m, geometry.active, units,
+                                        beams.shading, beams.sidelobe_db, beams.nbar) * gain[None, :]
+            tau = steering.relative_delays_samples(pos, trims, units, sound_speed_mps, samplerate_hz)
+            h = steering.steering_spectra(bulk_delay + tau, w, n_fft, bins)
+            pairs = basis.pairs
+            symmetric = pairs is not None and np.allclose(w[:, pairs[0]], w[:, pairs[1]], rtol=1e-9, atol=0.0)
+            return _BeamProduct(h, basis, symmetric, bulk_delay, n_fft, bins)
+
+        self.power = product(beams.power_deg, power_bins)
+        self.audio = product(beams.audio_deg, np.arange(n_fft // 2 + 1)) if len(beams.audio_deg) else None
 
     @property
     def nbytes(self) -> int:
-        power = self.power if self.pairs is None else self.power[0]
-        return power.nbytes + (0 if self.audio is None else self.audio.nbytes)
+        return self.power.nbytes + (0 if self.audio is None else self.audio.nbytes)
 
-    def power_spectra(self, spec: np.ndarray) -> np.ndarray:
-        """Steered power-band spectra, (bins, beams, K), from channel spectra (sensors, bins, K)."""
-        if self.pairs is None:
-            return np.matmul(self.power, np.ascontiguousarray(spec.transpose(1, 0, 2)))
-        ri, phase = self.power
-        pa, pb = self.pairs
-        s_sum = spec[pa] + spec[pb]
-        s_dif = spec[pa] - spec[pb]
-        n_pairs, n_bins, k = s_sum.shape
-        v = np.empty((n_bins, 2 * n_pairs, k, 2), np.float32)
-        v[:, :n_pairs, :, 0] = s_sum.real.transpose(1, 0, 2)
-        v[:, :n_pairs, :, 1] = s_sum.imag.transpose(1, 0, 2)
-        v[:, n_pairs:, :, 0] = -s_dif.imag.transpose(1, 0, 2)
-        v[:, n_pairs:, :, 1] = s_dif.real.transpose(1, 0, 2)
-        y = np.matmul(ri, v.reshape(n_bins, 2 * n_pairs, 2 * k)).view(np.complex64)
-        return y * phase[:, None, None]
+
+class _BeamProduct:
+    """Steered spectra ``Y[k, b] = sum_m H[k, b, m] X[m, k]`` of a set of beams on given bins,
+    from the spectra of the history rows (:class:`_Basis`).
+
+    Three ways to form the same sum, chosen once from the shapes (measured
+    in bench/): an element-wise product for few beams × sensors (one small
+    matrix product per bin costs more in call overhead than it saves);
+    otherwise, for beams symmetric about the phase centre of a symmetric
+    array, real products of half the size (:func:`_paired`: half the
+    steering bytes streamed per block); or one small complex matrix product
+    per bin.
+
+    ``__call__`` returns ``(Y, lag)``: in the real form the common factor
+    ``exp(-j w D)`` is left out, so the true output is ``Y`` delayed by
+    ``lag`` whole samples (a circular shift of the frame for audio, a phase
+    ramp over the bins for power, see :meth:`with_lag`).
+    """
+
+    def __init__(self, h: np.ndarray, basis: _Basis, symmetric: bool, bulk_delay: int, n_fft: int,
+                 bins: np.ndarray):
+        n_bins, n_beams, n_sensors = h.shape
+        self.real_form, self.elementwise, self.lag, self.ramp = False, False, 0, None
+        if n_beams * n_sensors <= _ELEMENTWISE_MAX:
+            self.h, self.elementwise = np.ascontiguousarray(basis.transform(h).transpose(1, 2, 0)), True
+        elif symmetric:
+            self.h, self.real_form, self.lag = _paired(h, basis.pairs, bulk_delay, n_fft, bins), True, bulk_delay
+            self.n_sums = basis.n_sums
+            self.ramp = np.exp(-2j * np.pi * np.asarray(bins) * bulk_delay / n_fft).astype(np.complex64)
+        else:
+            self.h = np.ascontiguousarray(basis.transform(h), dtype=np.complex64)
+
+    @property
+    def nbytes(self) -> int:
+        return self.h.nbytes
+
+    def __call__(self, spec: np.ndarray) -> tuple:
+        """Steered spectra (bins, beams, K) and their lag from row spectra (rows, bins, K)."""
+        if self.elementwise:
+            if spec.shape[2] == 1:
+                return (self.h * spec[None, :, :, 0]).sum(axis=1).T[:, :, None], 0
+            return (self.h[..., None] * spec[None]).sum(axis=1).transpose(1, 0, 2), 0
+        v = np.ascontiguousarray(spec.transpose(1, 0, 2))  # (bins, rows, K)
+        if not self.real_form:
+            return np.matmul(self.h, v), 0
+        v[:, self.n_sums:] *= np.complex64(1j)
+        n_bins, n_rows, k = v.shape
+        y = np.matmul(self.h, v.view(np.float32).reshape(n_bins, n_rows, 2 * k))
+        return y.view(np.complex64), self.lag
+
+    def with_lag(self, spec: np.ndarray) -> np.ndarray:
+        """Steered spectra (bins, beams, K) with the lag applied as a phase ramp."""
+        y, lag = self(spec)
+        return y * self.ramp[:, None, None] if lag else y
 
 
 def _mirror_pairs(pos: np.ndarray, gain: np.ndarray, trims: np.ndarray):
@@ -183,7 +267,7 @@ def _mirror_pairs(pos: np.ndarray, gain: np.ndarray, trims: np.ndarray):
     dist = np.linalg.norm(pos[:, None, :] + pos[None, :, :], axis=-1)
     partner = np.argmin(dist, axis=1)
     m = np.arange(len(pos))
-    if (np.any(dist[m, partner] > 1e-9 * scale) or np.any(partner[partner] != m)
+    if (len(pos) < 2 or np.any(dist[m, partner] > 1e-9 * scale) or np.any(partner[partner] != m)
             or not np.allclose(gain, gain[partner], rtol=1e-12, atol=0.0)
             or np.any(np.abs(trims + trims[partner]) > 1e-15)):
         return None
@@ -191,23 +275,29 @@ def _mirror_pairs(pos: np.ndarray, gain: np.ndarray, trims: np.ndarray):
     return m[keep], partner[keep]
 
 
-def _paired(h: np.ndarray, pairs, bulk_delay: int, n_fft: int, bins: np.ndarray):
+def _as_index(idx: np.ndarray):
+    """A slice equal to the index array ``idx`` when it runs in steps of +1 or -1, else ``idx``."""
+    if len(idx) > 1 and np.all(np.diff(idx) == idx[1] - idx[0]) and abs(int(idx[1] - idx[0])) == 1:
+        step = int(idx[1] - idx[0])
+        stop = int(idx[-1]) + step
+        return slice(int(idx[0]), None if stop < 0 else stop, step)
+    return idx
+
+
+def _paired(h: np.ndarray, pairs, bulk_delay: int, n_fft: int, bins: np.ndarray) -> np.ndarray:
     """Real matrices for mirror pairs (Van Trees 2002, §2.2: a symmetric array's
     beam pattern is real about its phase centre).
 
     With ``H_b = exp(-j w 2D) conj(H_a)`` for mirror sensors, the pair's term is
-    ``exp(-j w D) [R (X_a + X_b) + j I (X_a - X_b)]`` where ``R + jI =
-    exp(j w D) H_a``: two real products of half the size instead of one complex one.
+    ``exp(-j w D) [R (x_a + x_b) + j I (x_a - x_b)]`` (spectra) where ``R + jI
+    = exp(j w D) H_a``: two real products of half the size instead of one
+    complex one. Returns ``[R | I]`` for the rows of :class:`_Basis`, float32,
+    shape (bins, beams, rows); the factor ``exp(-j w D)`` is left to the caller.
     """
     pa, pb = pairs
-    omega = 2.0 * np.pi * bins / n_fft
+    omega = 2.0 * np.pi * np.asarray(bins) / n_fft
     q = h[:, :, pa] * np.exp(1j * omega * bulk_delay)[:, None, None]
-    centre = pa == pb
-    r, i = q.real.copy(), q.imag.copy()
-    r[:, :, centre] *= 0.5  # (X_a + X_b) counts a centre sensor twice
-    i[:, :, centre] = 0.0
-    ri = np.ascontiguousarray(np.concatenate([r, i], axis=2), dtype=np.float32)
-    return ri, np.exp(-1j * omega * bulk_delay).astype(np.complex64)
+    return np.ascontiguousarray(np.concatenate([q.real, q.imag[:, :, pa != pb]], axis=2), dtype=np.float32)
 
 
 def max_band_filter_taps(beams: BeamSet, samplerate_hz: float) -> int:
@@ -272,10 +362,7 @@ class Beamformer:
         self.crossfade_frames = max(1, int(round(crossfade_s * self.samplerate_hz)))
         self.bulk_delay_samples = steering.bulk_delay_samples(
             geometry.max_steering_delay_s(self.sound_speed_mps), self.samplerate_hz)
-        self._channels = geometry.active_channel_index
-        self._n_active = len(self._channels)
-        # Every input channel feeds an active sensor, in order: no gather needed.
-        self._all_channels = bool(np.array_equal(self._channels, np.arange(geometry.n_input_channels)))
+        self._basis = _Basis(geometry)
         self._steer = self._build(beams)
         self.reset(0)
 
@@ -291,7 +378,7 @@ class Beamformer:
 
     def _build(self, beams: BeamSet) -> _Steering:
         n_fft = self._fft_size_for(beams)
-        return _Steering(self.geometry, self.sound_speed_mps, self.samplerate_hz,
+        return _Steering(self.geometry, self._basis, self.sound_speed_mps, self.samplerate_hz,
                          self.bulk_delay_samples, n_fft, self.block_frames, beams), n_fft
 
     def apply(self, prepared) -> BlockResult:
@@ -307,7 +394,7 @@ class Beamformer:
         new, new_n = prepared
         same_audio_count = (old.audio is not None and new.audio is not None
                             and len(old.beams.audio_deg) == len(new.beams.audio_deg) and old_n == new_n)
-        self._fade_from = (old.audio, old.audio_elementwise, self._sample) if same_audio_count else None
+        self._fade_from = (old.audio, self._sample) if same_audio_count else None
         self._steer = prepared
         if new_n > self._buf.shape[1] - self.block_frames:
             self._grow_history(new_n)
@@ -324,7 +411,7 @@ class Beamformer:
         Pending power blocks are dropped; call :meth:`flush` first to keep them.
         """
         n_fft = self._steer[1]
-        self._buf = np.zeros((self._n_active, n_fft + 4 * self.block_frames), np.float32)
+        self._buf = np.zeros((self._basis.n_rows, n_fft + 4 * self.block_frames), np.float32)
         self._pos = n_fft
         self._sample = int(first_sample)
         self._power_origin = int(first_sample)
@@ -334,7 +421,7 @@ class Beamformer:
 
     def _grow_history(self, n_fft: int) -> None:
         keep = self._buf[:, : self._pos]
-        buf = np.zeros((self._n_active, n_fft + 4 * self.block_frames), np.float32)
+        buf = np.zeros((self._basis.n_rows, n_fft + 4 * self.block_frames), np.float32)
         take = min(keep.shape[1], n_fft)
         buf[:, n_fft - take: n_fft] = keep[:, keep.shape[1] - take:]
         self._buf, self._pos = buf, n_fft
@@ -390,8 +477,8 @@ class Beamformer:
         while pos < frames:
             to_boundary = self.block_frames - (self._sample - self._power_origin) % self.block_frames
             b = min(frames - pos, to_boundary)
-            frame = self._push(x[pos:pos + b] if self._all_channels else x[pos:pos + b, self._channels], n_fft)
-            spec = sfft.rfft(frame, axis=1)  # (n_active, n_fft//2+1), one FFT serves both paths
+            frame = self._push(x[pos:pos + b], n_fft)
+            spec = sfft.rfft(frame, axis=1)  # (rows, n_fft//2+1), one FFT serves both paths
             if n_audio:
                 audio[pos:pos + b] = self._audio(spec, b, n_fft)
             self._sample += b
@@ -415,18 +502,18 @@ class Beamformer:
         if self._pos + b > self._buf.shape[1]:
             self._buf[:, :n_fft] = self._buf[:, self._pos - n_fft:self._pos]
             self._pos = n_fft
-        self._buf[:, self._pos:self._pos + b] = chunk.T
+        self._basis.write(self._buf[:, self._pos:self._pos + b], chunk)
         self._pos += b
         return self._buf[:, self._pos - n_fft:self._pos]
 
     def _audio(self, spec: np.ndarray, b: int, n_fft: int) -> np.ndarray:
         steer = self._steer[0]
-        y = _beam_audio(steer.audio, steer.audio_elementwise, spec, b, n_fft)
+        y = _beam_audio(steer.audio, spec, b, n_fft)
         if self._fade_from is not None:
-            old, old_elementwise, start = self._fade_from
+            old, start = self._fade_from
             n = self._sample + np.arange(b)
             ramp = np.clip((n - start + 0.5) / self.crossfade_frames, 0.0, 1.0)[:, None]
-            y = ramp * y + (1.0 - ramp) * _beam_audio(old, old_elementwise, spec, b, n_fft)
+            y = ramp * y + (1.0 - ramp) * _beam_audio(old, spec, b, n_fft)
             if self._sample + b >= start + self.crossfade_frames:
                 self._fade_from = None
         return y
@@ -438,7 +525,7 @@ class Beamformer:
         spec = np.stack(self._pending_spec, axis=-1)  # (n_active, bins, K)
         starts = np.array(self._pending_start, np.int64)
         self._pending_start, self._pending_spec = [], []
-        y = steer.power_spectra(spec).transpose(2, 1, 0)  # (K, beams, bins)
+        y = steer.power.with_lag(spec).transpose(2, 1, 0)  # (K, beams, bins)
         out = np.empty((len(starts), len(steer.bands), y.shape[1]), np.float32)
         for i, ev in enumerate(steer.bands):
             lo = int(ev.bins[0]) - steer.k1
@@ -447,13 +534,11 @@ class Beamformer:
         return out, starts
 
 
-def _beam_audio(h: np.ndarray, elementwise: bool, spec: np.ndarray, b: int, n_fft: int) -> np.ndarray:
+def _beam_audio(product: _BeamProduct, spec: np.ndarray, b: int, n_fft: int) -> np.ndarray:
     """The last ``b`` samples of the audio beams from one frame's channel spectra."""
-    if elementwise:
-        y = (h * spec[None, :, :]).sum(axis=1).T  # (bins, n_audio)
-    else:
-        y = np.matmul(h, spec.T[:, :, None])[:, :, 0]
-    return sfft.irfft(y, n=n_fft, axis=0)[n_fft - b:]
+    y, lag = product(spec[:, :, None])
+    frame = sfft.irfft(y[:, :, 0], n=n_fft, axis=0)
+    return frame[n_fft - b - lag:n_fft - lag]
 
 
 def _empty_rows(n_bands: int, n_beams: int) -> tuple:
@@ -469,22 +554,25 @@ def _concat_results(parts: list, n_bands: int, n_beams: int) -> tuple:
 
 
 def sanitize(block: np.ndarray) -> tuple:
-    """Float32 copy of ``block`` with non-finite samples zeroed.
+    """``block`` as float32 with non-finite samples zeroed, never modifying the caller's array.
 
     Returns
     -------
     clean : ndarray of float32, same shape
+        ``block`` itself when it is clean float32 (no copy on the hot path),
+        otherwise a cleaned copy.
     nan_count : int
         Non-finite samples replaced.
     clip_count : int
         Finite samples with |x| >= 1 (at or beyond full scale).
     """
-    x = np.array(block, dtype=np.float32, order="C")
+    x = np.asarray(block, dtype=np.float32)
     if x.size == 0:
         return x, 0, 0
     top, bottom = float(x.max()), float(x.min())  # fast path: no temporaries for clean data
     nan_count = 0
     if not (np.isfinite(top) and np.isfinite(bottom)):
+        x = np.array(x)
         bad = ~np.isfinite(x)
         nan_count = int(bad.sum())
         x[bad] = 0.0
