@@ -92,9 +92,7 @@ class Source:
     def _paced_write(self, block: np.ndarray, start_time: float, realtime: bool) -> None:
         if realtime:
             due = start_time + (self.ring.next_stream_index + len(block)) / self.samplerate_hz
-            delay = due - time.monotonic()
-            if delay > 0:
-                self._stop.wait(delay)
+            _sleep_until(due, self._stop)
             self.ring.write(block)
         else:
             # As fast as the engine takes it: wait for room instead of dropping.
@@ -126,6 +124,7 @@ class SimulatedSource(Source):
 
         ctx = mp.get_context("spawn")
         receiver, sender = ctx.Pipe(duplex=False)
+        _widen_pipe(receiver, 4 * self.block_frames * self.channels * 4)
         stop = ctx.Event()
         self._proc = ctx.Process(target=_render_scene, name="beamtap-scene", daemon=True,
                                  args=(self.config_text, self.where, self.block_frames, self.realtime, sender, stop))
@@ -139,14 +138,12 @@ class SimulatedSource(Source):
                         raise RuntimeError(f"scene process ended (exit code {self._proc.exitcode})")
                     continue
                 msg = receiver.recv_bytes()
-                if len(msg) != frame_bytes:  # the first message: UTC of sample 0
-                    self.clock = SampleClock(self.samplerate_hz, float(msg.decode()))
+                if len(msg) != frame_bytes:  # the first message: UTC and monotonic time of sample 0
+                    utc0, start_monotonic = (float(v) for v in msg.decode().split())
+                    self.clock = SampleClock(self.samplerate_hz, utc0)
                     continue
                 block = np.frombuffer(msg, np.float32).reshape(self.block_frames, self.channels)
-                if self.realtime:
-                    self.ring.write(block)
-                else:
-                    self._paced_write(block, 0.0, False)
+                self._paced_write(block, start_monotonic, self.realtime)
         except EOFError:
             pass
         finally:
@@ -168,19 +165,46 @@ def _render_scene(config_text, where, block_frames, realtime, conn, stop):
     config = loads(config_text, where)
     scene = make_scene(config)
     fs = config.input.samplerate_hz
-    conn.send_bytes(repr(time.time()).encode())
     t0 = time.monotonic()
+    conn.send_bytes(f"{time.time()!r} {t0!r}".encode())
     n = 0
     try:
         while not stop.is_set():
-            block = np.ascontiguousarray(scene.render(block_frames), np.float32)
+            block = scene.render(block_frames)
             n += block_frames
-            if realtime:
-                delay = t0 + n / fs - time.monotonic()
-                if delay > 0 and stop.wait(delay):
-                    break
-            conn.send_bytes(block.tobytes())
+            # Hand the block over half a block before its last frame is due; the parent releases it
+            # into the ring on time. The pipe's delay is then off the latency path, and rendering
+            # happens between hand-overs rather than competing with the processing of each block.
+            if realtime and _sleep_until(t0 + (n - block_frames / 2) / fs, stop):
+                break
+            conn.send_bytes(np.ascontiguousarray(block, np.float32).tobytes())
     except (BrokenPipeError, EOFError, OSError):
+        pass
+
+
+def _sleep_until(deadline: float, stop) -> bool:
+    """Sleep until ``time.monotonic()`` reaches ``deadline``; True if ``stop`` was set meanwhile.
+
+    ``time.sleep`` (a high-resolution timer) wakes closer to the deadline than
+    a timed wait on an event; ``stop`` (a threading or multiprocessing event)
+    is checked at least every 50 ms.
+    """
+    while not stop.is_set():
+        left = deadline - time.monotonic()
+        if left <= 0:
+            return False
+        time.sleep(min(left, 0.05))
+    return True
+
+
+def _widen_pipe(conn, nbytes: int) -> None:
+    """Make a pipe hold a few whole blocks (Linux; elsewhere a no-op), so that
+    sending one block never waits for the reader to drain part of it."""
+    try:
+        import fcntl  # noqa: PLC0415
+
+        fcntl.fcntl(conn.fileno(), fcntl.F_SETPIPE_SZ, int(nbytes))
+    except (ImportError, AttributeError, OSError):
         pass
 
 
