@@ -1,14 +1,22 @@
 """The publisher: one ZeroMQ PUB socket, never blocking the processing thread.
 
-Each topic has its own sequence counter. ZeroMQ keeps a bounded queue per
+Each topic has its own sequence counter. Messages are handed to a sender
+thread that owns the socket: encoding and the socket's hand-over to
+ZeroMQ's I/O thread (which on a virtual machine costs tens to hundreds of
+microseconds per block, more with many subscribers; measured in
+bench/service_bench.py) then overlap the wait for the next block instead of
+lengthening the processing of this one. ZeroMQ keeps a bounded queue per
 subscriber (the send high-water mark, ``[publish] send_queue`` messages);
 a subscriber that falls behind loses messages there, which it sees as a
-jump in ``seq``. A send the socket itself refuses is dropped and counted.
+jump in ``seq``. A send the socket itself refuses, or a message that finds
+the hand-over queue full, is dropped and counted.
 """
 
 from __future__ import annotations
 
 import logging
+import queue
+import threading
 import time
 
 import zmq
@@ -44,6 +52,9 @@ class Publisher:
     context : zmq.Context, optional
     """
 
+    #: Messages waiting for the sender thread before new ones are dropped (a few seconds of blocks).
+    HANDOVER_MESSAGES = 1000
+
     def __init__(self, endpoint: str, stream_id: str, send_queue: int = 200, context=None):
         self.stream_id = stream_id
         self._ctx = context or zmq.Context.instance()
@@ -53,21 +64,56 @@ class Publisher:
         self.seq = {}
         self.sent = 0
         self.dropped = 0
+        self._next_drop_log = 0.0
+        self._handover: queue.SimpleQueue = queue.SimpleQueue()
+        self._thread = threading.Thread(target=self._send_loop, name="beamtap-publish", daemon=True)
+        self._thread.start()
 
     def publish(self, topic: str, header: dict, payload=None) -> bool:
-        """Send one message without blocking; returns False if it was dropped."""
+        """Queue one message for sending without blocking; returns False if it was dropped.
+
+        ``payload`` is sent as it is when the sender thread gets to it: pass
+        an array nobody modifies afterwards (the engine's outputs are fresh
+        arrays every block).
+        """
         seq = self.seq.get(topic, 0)
         self.seq[topic] = seq + 1
-        header = dict(header, stream=self.stream_id, seq=seq, published_utc=time.time())
-        try:
-            self._sock.send_multipart(encode(topic, header, payload), flags=zmq.NOBLOCK, copy=False)
-        except zmq.Again:
-            self.dropped += 1
+        if self._handover.qsize() >= self.HANDOVER_MESSAGES:
+            self._note_drop(topic, "the sender thread is behind")
             return False
-        self.sent += 1
+        self._handover.put((topic, dict(header, stream=self.stream_id, seq=seq), payload))
         return True
 
+    def _send_loop(self) -> None:
+        while True:
+            item = self._handover.get()
+            if item is None:
+                return
+            topic, header, payload = item
+            header["published_utc"] = time.time()
+            try:
+                self._sock.send_multipart(encode(topic, header, payload), flags=zmq.NOBLOCK, copy=False)
+            except zmq.Again:
+                self._note_drop(topic, "the socket refused it")
+                continue
+            except zmq.ZMQError as exc:
+                self._note_drop(topic, str(exc))
+                continue
+            self.sent += 1
+
+    def _note_drop(self, topic: str, why: str) -> None:
+        # Every drop is counted (status: messages_dropped); the log gets at most one line a second.
+        self.dropped += 1
+        now = time.monotonic()
+        if now >= self._next_drop_log:
+            log.warning("publish: %d message(s) dropped so far, latest %s (%s)", self.dropped, topic, why)
+            self._next_drop_log = now + 1.0
+
     def close(self) -> None:
+        """Send what is queued, stop the sender thread and close the socket."""
+        if self._thread.is_alive():
+            self._handover.put(None)
+            self._thread.join(timeout=2.0)
         self._sock.close(linger=0)
 
     def __enter__(self):

@@ -20,6 +20,7 @@ beamformer.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -436,6 +437,11 @@ class Beamformer:
         return self._steer[1]
 
     @property
+    def mirror_pair_rows(self) -> bool:
+        """True when the history holds sums and differences of mirror pairs (see :class:`_Basis`)."""
+        return self._basis.pairs is not None
+
+    @property
     def steering_bytes(self) -> int:
         return self._steer[0].nbytes
 
@@ -522,7 +528,8 @@ class Beamformer:
         steer = self._steer[0]
         if not self._pending_start:
             return _empty_rows(len(steer.bands), len(steer.beams.power_deg))
-        spec = np.stack(self._pending_spec, axis=-1)  # (n_active, bins, K)
+        pending = self._pending_spec
+        spec = pending[0][:, :, None] if len(pending) == 1 else np.stack(pending, axis=-1)  # (rows, bins, K)
         starts = np.array(self._pending_start, np.int64)
         self._pending_start, self._pending_spec = [], []
         y = steer.power.with_lag(spec).transpose(2, 1, 0)  # (K, beams, bins)
@@ -571,7 +578,7 @@ def sanitize(block: np.ndarray) -> tuple:
         return x, 0, 0
     top, bottom = float(x.max()), float(x.min())  # fast path: no temporaries for clean data
     nan_count = 0
-    if not (np.isfinite(top) and np.isfinite(bottom)):
+    if not (math.isfinite(top) and math.isfinite(bottom)):
         x = np.array(x)
         bad = ~np.isfinite(x)
         nan_count = int(bad.sum())
