@@ -63,6 +63,7 @@ def run_case(n_subscribers: int, seconds: float, folder: Path) -> dict:
     cfg = folder / "bench.toml"
     cfg.write_text(CONFIG)
     ready = folder / f"ready-{n_subscribers}.json"
+    ready.unlink(missing_ok=True)  # a file left by an earlier run would name a service that has stopped
     proc = subprocess.Popen([sys.executable, "-m", "beamtap", "serve", "--config", str(cfg), "--publish",
                              "tcp://127.0.0.1:*", "--control", "tcp://127.0.0.1:*", "--ready-file", str(ready),
                              "--log-level", "WARNING"])
@@ -164,24 +165,32 @@ def main():
         passive(sys.argv[2], int(sys.argv[3]), float(sys.argv[4]))
         return
     seconds = float(os.environ.get("BENCH_SECONDS", "20"))
+    runs = int(os.environ.get("BENCH_RUNS", "3"))
     with tempfile.TemporaryDirectory() as tmp:
-        rows = [run_case(n, seconds, Path(tmp)) for n in (1, 20)]
+        # Several runs, one after the other: this machine is shared, and the spread is part of the result.
+        rows = [dict(run_case(n, seconds, Path(tmp)), run=k + 1) for k in range(runs) for n in (1, 20)]
     (HERE / "service_results.json").write_text(json.dumps(rows, indent=2))
     md = [f"# Live service benchmark ({time.strftime('%Y-%m-%d')})", "",
           "16 sensors, 91-beam fan, 4 audio beams, 48 kHz, blocks of 1024 (21.33 ms), simulated source paced "
           f"in real time, {seconds:g} s per case after 2 s warm-up; on loopback, one measuring subscriber "
           "(decodes every header) and the others in a second process (receive every audio and power message).", "",
-          "| subscribers | block p50 / p99 (ms) | p99 / block | CPU share | latency published p50 / p99 / max (ms) "
+          "| run | subscribers | block p50 / p99 (ms) | p99 / block | CPU share | latency published p50 / p99 / max (ms) "
           "| latency received p50 / p99 (ms) | limit block + D + 5 ms | messages per subscriber |",
-          "|---|---|---|---|---|---|---|---|"]
+          "|---|---|---|---|---|---|---|---|---|"]
     for r in rows:
-        md.append(f"| {r['subscribers']} | {r['block_ms_p50']:.2f} / {r['block_ms_p99']:.2f} | "
+        md.append(f"| {r['run']} | {r['subscribers']} | {r['block_ms_p50']:.2f} / {r['block_ms_p99']:.2f} | "
                   f"{100 * r['p99_share_of_block']:.1f} % | {100 * r['cpu_share_median']:.0f} % | "
                   f"{r['latency_published_ms_p50']:.2f} / {r['latency_published_ms_p99']:.2f} / "
                   f"{r['latency_published_ms_max']:.2f} | {r['latency_received_ms_p50']:.2f} / "
                   f"{r['latency_received_ms_p99']:.2f} | {r['latency_limit_ms']:.2f} | "
                   f"{r['messages_per_subscriber_min']}–{r['messages_per_subscriber_max']} |")
-    md += ["", "Rerun: `python bench/service_bench.py` (BENCH_SECONDS sets the length of each case).", ""]
+    worst = max(rows, key=lambda r: r["p99_share_of_block"])
+    late = max(rows, key=lambda r: r["latency_published_ms_p99"] - r["latency_limit_ms"])
+    md += ["", f"Limits (issue): block p99 <= 10 % of the block; latency p99 <= block + D + 5 ms. Worst run: block "
+           f"p99 {100 * worst['p99_share_of_block']:.1f} %; latency p99 {late['latency_published_ms_p99']:.2f} ms "
+           f"against {late['latency_limit_ms']:.2f} ms.", "",
+           "Rerun: `python bench/service_bench.py` (BENCH_SECONDS sets the length of each case, BENCH_RUNS the "
+           "number of runs).", ""]
     (HERE / "service_results.md").write_text("\n".join(md))
     print("\n".join(md))
 

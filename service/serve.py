@@ -7,6 +7,7 @@ exit with status 0.
 
 from __future__ import annotations
 
+import gc
 import json
 import logging
 import os
@@ -74,6 +75,10 @@ class Service:
                  s["latency_budget_ms"])
         for w in s["warnings"]:
             log.warning(w)
+        # Everything built so far lives for the whole run: keep it out of the cyclic garbage
+        # collector's full passes, whose length would otherwise grow with it and land on some block.
+        gc.collect()
+        gc.freeze()
         self.control.start()
         self.pipeline.start()
         self.source.start()
