@@ -8,7 +8,10 @@ bin for a batch of power blocks). The steering filters are the
 Kaiser-windowed-sinc fractional delays of :mod:`.fracdelay`, weighted by
 shading and calibration gain; their DFTs are computed once per beam set, so
 the output is exactly the time-domain delay-and-sum of those FIR filters
-(to float32 rounding), whatever the block size.
+(to float32 rounding), whatever the block size. For large arrays symmetric
+through their phase centre the history holds sums and differences of mirror
+pairs instead of the sensor signals, so that symmetric beams are steered by
+real products of half the size (:class:`_Basis`, :func:`_paired`).
 
 References
 ----------
