@@ -84,6 +84,7 @@ def _status_text(s: dict) -> str:
     keys = [("state", "{}"), ("source", "{}"), ("uptime_s", "{:.1f} s"), ("frames_captured", "{}"),
             ("overflows", "{}"), ("gaps", "{}"), ("frames_lost", "{}"), ("nan_samples", "{}"),
             ("clipped_samples", "{}"), ("block_ms_p50", "{:.3f} ms"), ("block_ms_p99", "{:.3f} ms"),
+            ("block_cpu_ms_p99", "{:.3f} ms"),
             ("block_budget_ms", "{:.2f} ms"), ("cpu_share", "{:.0%}"), ("messages_sent", "{}"),
             ("messages_dropped", "{}"), ("latency_budget_ms", "{:.2f} ms"), ("beam_table", "{}")]
     lines = [f"{k:<18} {fmt.format(s[k])}" for k, fmt in keys if k in s and s[k] is not None]

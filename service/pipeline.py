@@ -53,7 +53,10 @@ class Pipeline:
         self._retargets: queue.Queue = queue.Queue(maxsize=4)
         self._stop = threading.Event()
         self._thread = None
+        # Wall time and this thread's CPU time per block, the last 1024 blocks: when the first is
+        # much larger than the second, the thread was waiting for a CPU (other load, host steal).
         self._durations = np.zeros(1024, np.float64)
+        self._cpu_durations = np.zeros(1024, np.float64)
         self._n_durations = 0
         self.counts = {"blocks": 0, "gaps": 0, "frames_lost_seen": 0, "nan_samples": 0, "clipped_samples": 0,
                        "retargets": 0}
@@ -158,7 +161,7 @@ class Pipeline:
                      len(slot["beams"].power_deg), len(slot["beams"].audio_deg))
 
     def _process(self, chunk):
-        t0 = time.perf_counter()
+        t0, c0 = time.perf_counter(), time.thread_time()
         if chunk.gap_frames or chunk.first_sample != self.engine.next_sample:
             lost = chunk.gap_frames or (chunk.first_sample - self.engine.next_sample)
             self._release(self.engine.flush())
@@ -185,7 +188,9 @@ class Pipeline:
             self.recorder.offer("audio", first, result.audio, common)
         self._release(result)
         self.counts["blocks"] += 1
-        self._durations[self._n_durations % len(self._durations)] = time.perf_counter() - t0
+        slot = self._n_durations % len(self._durations)
+        self._durations[slot] = time.perf_counter() - t0
+        self._cpu_durations[slot] = time.thread_time() - c0
         self._n_durations += 1
 
     def _log_gap(self, lost: int, first_sample: int) -> None:
@@ -230,6 +235,7 @@ class Pipeline:
     def status(self) -> dict:
         n = min(self._n_durations, len(self._durations))
         d = self._durations[:n] if n else np.zeros(1)
+        dc = self._cpu_durations[:n] if n else np.zeros(1)
         src = self.source.stats()
         out = {
             "state": "running" if not self._stop.is_set() else "stopping",
@@ -249,6 +255,8 @@ class Pipeline:
             "clipped_samples": self.counts["clipped_samples"],
             "block_ms_p50": 1e3 * float(np.percentile(d, 50)),
             "block_ms_p99": 1e3 * float(np.percentile(d, 99)),
+            "block_cpu_ms_p50": 1e3 * float(np.percentile(dc, 50)),
+            "block_cpu_ms_p99": 1e3 * float(np.percentile(dc, 99)),
             "block_budget_ms": 1e3 * self.block_frames / self.samplerate_hz,
             "cpu_share": self._cpu_share,
             "messages_sent": self.publisher.sent,

@@ -191,6 +191,9 @@ def test_status_topic_reports_counters(line_service):
     with Subscriber(line_service.publish, topics=["status"], timeout_s=10) as sub:
         st = sub.recv().header
     for key in ("frames_captured", "overflows", "gaps", "frames_lost", "nan_samples", "clipped_samples",
-                "block_ms_p50", "block_ms_p99", "cpu_share", "messages_dropped", "beam_table"):
+                "block_ms_p50", "block_ms_p99", "block_cpu_ms_p50", "block_cpu_ms_p99", "cpu_share",
+                "messages_dropped", "beam_table"):
         assert key in st
     assert st["frames_captured"] > 0 and st["block_ms_p50"] > 0
+    # a thread's CPU time within a block cannot exceed the wall time of that block (1 µs of clock rounding)
+    assert 0 < st["block_cpu_ms_p50"] <= st["block_ms_p50"] + 1e-3
