@@ -132,6 +132,7 @@ class SimulatedSource(Source):
         sender.close()
         try:
             frame_bytes = self.block_frames * self.channels * 4
+            start_monotonic = time.monotonic()  # replaced by the child's own start in its first message
             while not self._stop.is_set():
                 if not receiver.poll(0.2):
                     if not self._proc.is_alive():
