@@ -26,6 +26,7 @@ for _v in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
 import argparse  # noqa: E402
 import json  # noqa: E402
 import platform  # noqa: E402
+import sys  # noqa: E402
 import time  # noqa: E402
 import tracemalloc  # noqa: E402
 from pathlib import Path  # noqa: E402
@@ -35,6 +36,9 @@ import numpy as np  # noqa: E402
 from beamtap.service.engine import ArrayGeometry, Beamformer  # noqa: E402
 from beamtap.service.engine.beamformer import BeamSet  # noqa: E402
 from beamtap.service.engine.directions import fan, unit_vectors  # noqa: E402
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from hoststat import cpu_ticks, steal_share  # noqa: E402
 
 FS, C, BLOCK, SPACING = 48000.0, 1500.0, 1024, 0.5
 BAND = (300.0, 1400.0)
@@ -102,10 +106,12 @@ def measure(n_sensors, n_beams, n_audio, batch, blocks, repeats, reference=True,
     # the ratio is the median of the per-repeat ratios.
     ref = ReferenceBeamformer(geo, power, audio, block) if reference else None
     t_engine, t_ref = [], []
+    ticks0 = cpu_ticks()
     for _ in range(repeats):
         t_engine.append(_seconds_per_block(bf.process, x, blocks, block))
         if ref is not None:
             t_ref.append(_seconds_per_block(ref.process, x, min(blocks, 24), block))
+    steal = steal_share(ticks0, cpu_ticks())
     ratios = np.array(t_ref) / np.array(t_engine) if ref is not None else None
     t_engine = float(np.median(t_engine))
     row = {
@@ -113,7 +119,7 @@ def measure(n_sensors, n_beams, n_audio, batch, blocks, repeats, reference=True,
         "power_batch_blocks": batch, "fft_size": bf.fft_size, "mirror_pair_rows": bf.mirror_pair_rows,
         "power_extra_latency_ms": 1e3 * (batch - 1) * block / FS,
         "steering_mb": bf.steering_bytes / 2**20, "memory_growth_bytes": int(grow),
-        "engine_ms_per_block": 1e3 * t_engine, "engine_rtf": block / FS / t_engine,
+        "engine_ms_per_block": 1e3 * t_engine, "engine_rtf": block / FS / t_engine, "host_steal_share": steal,
     }
     if ref is not None:
         t_ref = float(np.median(t_ref))
@@ -147,17 +153,18 @@ def main():
           f"48 kHz, line arrays of {SPACING} m at {C:g} m/s, band {BAND[0]:g}-{BAND[1]:g} Hz; "
           f"medians of {repeats} repeats of {blocks} blocks; CPU time of this process. Engine and "
           "reference alternate repeat by repeat; engine / reference is the median of the per-repeat ratios. "
-          "rows: what the engine's history holds (sensor signals, or sums and differences of mirror pairs).", "",
+          "rows: what the engine's history holds (sensor signals, or sums and differences of mirror pairs). "
+          "Host steal: share of the machine's CPU time the hypervisor gave to others meanwhile (/proc/stat).", "",
           "## Required cases", "",
           "| sensors | power beams | audio beams | block | power batch (extra latency) | FFT | rows | steering MB "
-          "| engine ms/block | engine RTF | reference RTF | engine / reference |",
-          "|---|---|---|---|---|---|---|---|---|---|---|---|"]
+          "| engine ms/block | engine RTF | reference RTF | engine / reference | host steal |",
+          "|---|---|---|---|---|---|---|---|---|---|---|---|---|"]
     for r in headline:
         md.append(f"| {r['sensors']} | {r['beams']} | {r['audio_beams']} | {r['block']} | "
                   f"{r['power_batch_blocks']} ({r['power_extra_latency_ms']:.1f} ms) | {r['fft_size']} | "
                   f"{'mirror pairs' if r['mirror_pair_rows'] else 'sensors'} | {r['steering_mb']:.1f} | "
                   f"{r['engine_ms_per_block']:.3f} | {r['engine_rtf']:.1f} | "
-                  f"{r['reference_rtf']:.2f} | {r['speedup_vs_reference']:.1f}x |")
+                  f"{r['reference_rtf']:.2f} | {r['speedup_vs_reference']:.1f}x | {100 * r['host_steal_share']:.1f} % |")
     md += ["", "## How cost grows (power batch 4)", "",
            "| sensors | power beams | audio beams | block | FFT | ms/block | µs per frame | RTF | memory growth |",
            "|---|---|---|---|---|---|---|---|---|"]

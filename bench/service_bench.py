@@ -35,6 +35,9 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from beamtap.client.protocol import decode  # noqa: E402
 from beamtap.processes import stop  # noqa: E402
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from hoststat import cpu_ticks, steal_share  # noqa: E402
+
 HERE = Path(__file__).resolve().parent
 FS, BLOCK = 48000, 1024
 CONFIG = """
@@ -57,19 +60,6 @@ fan = { from_deg = 0.0, to_deg = 180.0, step_deg = 2.0 }
 band_hz = [300.0, 1400.0]
 audio_deg = [[30.0, 0.0], [70.0, 0.0], [110.0, 0.0], [150.0, 0.0]]
 """
-
-
-def cpu_ticks() -> tuple:
-    """(steal, total) jiffies of all CPUs from /proc/stat (Linux), or (0, 0) elsewhere.
-
-    Steal is time the hypervisor gave this machine's virtual CPUs to someone
-    else: on a shared VM it explains most of the spread between runs.
-    """
-    try:
-        fields = [int(v) for v in Path("/proc/stat").read_text().split("\n", 1)[0].split()[1:]]
-    except (OSError, ValueError):
-        return 0, 0
-    return (fields[7] if len(fields) > 7 else 0), sum(fields)
 
 
 def run_case(n_subscribers: int, seconds: float, folder: Path) -> dict:
@@ -150,7 +140,7 @@ def run_case(n_subscribers: int, seconds: float, folder: Path) -> dict:
         "latency_published_ms_max": float(np.max(lat_pub)),
         "latency_received_ms_p50": float(np.median(lat_recv)), "latency_received_ms_p99": float(np.percentile(lat_recv, 99)),
         "latency_limit_ms": budget,
-        "host_steal_share": (ticks1[0] - ticks0[0]) / max(ticks1[1] - ticks0[1], 1),
+        "host_steal_share": steal_share(ticks0, ticks1),
     }
 
 
