@@ -149,10 +149,11 @@ class _Basis:
 
     def write(self, out: np.ndarray, chunk: np.ndarray) -> None:
         """Rows (n_rows, frames) of ``out`` from input frames ``chunk`` (frames, channels)."""
+        sensors = chunk if self._cols is None else chunk[:, self._cols]
         if self.pairs is None:
-            out[:] = (chunk if self._cols is None else chunk[:, self._cols]).T
+            out[:] = sensors.T
             return
-        x = np.ascontiguousarray((chunk if self._cols is None else chunk[:, self._cols]).T)  # (sensors, frames)
+        x = np.ascontiguousarray(sensors.T)  # (sensors, frames)
         sums = out[:self.n_sums]
         np.add(x[self._sa], x[self._sb], out=sums)
         if len(self._centre):
@@ -164,9 +165,8 @@ class _Basis:
         if self.pairs is None:
             return h
         pa, pb = self.pairs
-        two = pa != pb
         # x_a = (s + d) / 2 and x_b = (s - d) / 2 for a pair; x_c = s for a centre sensor (a = b).
-        return np.concatenate([0.5 * (h[..., pa] + h[..., pb]), 0.5 * (h[..., pa[two]] - h[..., pb[two]])], axis=-1)
+        return np.concatenate([0.5 * (h[..., pa] + h[..., pb]), 0.5 * (h[..., self._da] - h[..., self._db])], axis=-1)
 
 
 class _Steering:
