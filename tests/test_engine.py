@@ -6,7 +6,7 @@ from scipy.signal import lfilter
 
 from beamtap.service.engine import ArrayGeometry, Beamformer
 from beamtap.service.engine.bandpower import design_band_filter
-from beamtap.service.engine.beamformer import BeamSet
+from beamtap.service.engine.beamformer import COMPILED_AVAILABLE, BeamSet
 from beamtap.service.engine.directions import fan, grid
 
 from conftest import broadband_plane_wave, tone_plane_wave
@@ -310,6 +310,62 @@ def test_mirror_pair_path_equals_general_path(rng, make):
     assert np.max(np.abs(ra.power_db - rb.power_db)) < 1e-3
     # float32 products of different shapes: agreement to a few float32 roundings of the signal scale
     assert np.max(np.abs(ra.audio - rb.audio)) < 1e-5 * np.max(np.abs(rb.audio))
+
+
+@pytest.mark.skipif(not COMPILED_AVAILABLE, reason="the compiled kernels are not installed")
+@pytest.mark.parametrize("geo", [
+    ArrayGeometry.line(16, 0.5),
+    ArrayGeometry.line(8, 0.5, dead=np.array([0, 0, 1, 0, 0, 0, 0, 0], bool), gain_db=np.linspace(-2, 2, 8),
+                       channels=np.array([2, 1, 3, 4, 5, 6, 8, 7])),
+    ArrayGeometry.line(64, 0.5, channels=np.arange(64, 0, -1)),
+    ArrayGeometry.line(65, 0.5),
+    ArrayGeometry.ring(64, 4.0),
+    ArrayGeometry.grid(5, 7, 0.3, dead=np.eye(5, 7, dtype=bool).ravel()),
+], ids=["line16", "line8-dead-gains-rewired", "line64-pairs-rewired", "line65-centre", "ring64", "grid35-dead"])
+def test_compiled_kernels_equal_numpy(rng, geo):
+    """The compiled loops (service/engine/_kernels.c) and numpy form the same sums: power and
+    audio agree to float32 rounding (a consistency check of two implementations of one sum),
+    whatever the block size, power batch or input memory layout."""
+    every_sensor = np.zeros((geo.n_input_channels, 3))
+    every_sensor[geo.channels - 1] = geo.positions_m - geo.phase_centre_m
+    x, _ = broadband_plane_wave(every_sensor, C, FS, 57.0, 0.1 * rng.standard_normal(9000))
+    wide = np.asfortranarray(np.column_stack([x, x[:, :1]]))  # an extra channel, column-major
+    audio_deg = [[57.0, 0.0], [120.0, 0.0], [10.0, 20.0]] + [[a, 0.0] for a in range(20, 180, 17)]
+    beams = BeamSet(fan(0, 180, 2), audio_deg, shading="taylor", bands_hz=[(300, 1400), (1400, 3000)])
+    for batch, size in ((1, 1024), (4, 97), (3, 4096)):
+        a = Beamformer(geo, C, FS, 1024, beams, power_batch_blocks=batch, compiled=True)
+        b = Beamformer(geo, C, FS, 1024, beams, power_batch_blocks=batch, compiled=False)
+        parts_a = [a.process(wide[i:i + size]) for i in range(0, len(x), size)] + [a.flush()]
+        parts_b = [b.process(x[i:i + size]) for i in range(0, len(x), size)] + [b.flush()]
+        power_a = np.concatenate([p.power_db for p in parts_a])
+        power_b = np.concatenate([p.power_db for p in parts_b])
+        audio_a = np.concatenate([p.audio for p in parts_a])
+        audio_b = np.concatenate([p.audio for p in parts_b])
+        assert power_a.shape == power_b.shape and len(power_a) == len(x) // 1024
+        assert np.max(np.abs(power_a - power_b)) < 1e-3
+        assert np.max(np.abs(audio_a - audio_b)) < 1e-5 * np.max(np.abs(audio_b))
+
+
+def test_compiled_kernels_refuse_bad_buffers():
+    """The compiled loops check sizes before touching memory: a short buffer is a ValueError."""
+    if not COMPILED_AVAILABLE:
+        pytest.skip("the compiled kernels are not installed")
+    from beamtap.service.engine import _kernels
+
+    h = np.zeros((1, 4, 2, 8), np.float32)
+    v = np.zeros((1, 2, 4), np.complex64)
+    y = np.zeros((1, 8, 4), np.complex64)
+    _kernels.steer(h, None, v, 1, 4, 0, 4, 2, 2, 8, y)  # the right sizes pass
+    with pytest.raises(ValueError, match="y: buffer"):
+        _kernels.steer(h, None, v, 1, 4, 0, 4, 2, 2, 8, y[:, :4])
+    with pytest.raises(ValueError, match="bin range"):
+        _kernels.steer(h, None, v, 1, 4, 1, 4, 2, 2, 8, y)
+    x = np.zeros((10, 3), np.float32)
+    idx, ones = np.array([0, 3], np.int32), np.ones(2, np.float32)
+    with pytest.raises(ValueError, match="channel index"):
+        _kernels.rows(x, 10, 3, idx, idx, ones, ones, 2, np.zeros((2, 20), np.float32), 20, 0)
+    with pytest.raises(ValueError, match="columns outside"):
+        _kernels.rows(x, 10, 3, idx[:1], idx[:1], ones, ones, 1, np.zeros((2, 20), np.float32), 20, 15)
 
 
 def test_line_aliasing_warning_follows_the_spacing_rule():

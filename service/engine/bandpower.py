@@ -132,6 +132,7 @@ class BandPowerEvaluator:
 
     def __init__(self, band_filter: BandFilter, n_fft: int, valid: int):
         self.filter = band_filter
+        self.n_fft = int(n_fft)
         g = np.fft.rfft(band_filter.taps, n_fft)
         keep = np.nonzero(np.abs(g) >= BIN_FLOOR * np.abs(g).max())[0]
         k1, k2 = max(int(keep[0]), 1), min(int(keep[-1]), n_fft // 2 - 1)
@@ -145,6 +146,25 @@ class BandPowerEvaluator:
         lam, vec = np.linalg.eigh(w.T @ w / valid)
         big = lam > lam.max() * 1e-12
         self.factor = np.ascontiguousarray(vec[:, big] * np.sqrt(lam[big]), dtype=np.float32)
+
+    def delayed(self, lag_samples: int) -> "BandPowerEvaluator":
+        """The evaluator for spectra that lack a delay of ``lag_samples``.
+
+        Multiplying a spectrum by ``exp(-2j pi k lag / N)`` turns each bin's
+        (re, im) pair by a fixed angle, a linear map that folds into the
+        factor: no pass over the spectra is needed to apply the delay.
+        """
+        if lag_samples == 0:
+            return self
+        c = np.exp(-2j * np.pi * self.bins * lag_samples / self.n_fft)[:, None]
+        f_re, f_im = self.factor[0::2].astype(np.float64), self.factor[1::2].astype(np.float64)
+        factor = np.empty_like(self.factor, dtype=np.float64)
+        # (vr + j vi)(cr + j ci): real part vr cr - vi ci, imaginary part vr ci + vi cr
+        factor[0::2] = c.real * f_re + c.imag * f_im
+        factor[1::2] = -c.imag * f_re + c.real * f_im
+        out = object.__new__(BandPowerEvaluator)
+        out.__dict__.update(self.__dict__, factor=np.ascontiguousarray(factor, dtype=np.float32))
+        return out
 
     def mean_square(self, band_spectrum: np.ndarray) -> np.ndarray:
         """Mean square of the filtered signal over the block.

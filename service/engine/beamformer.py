@@ -30,6 +30,14 @@ import numpy as np
 import scipy.fft as sfft
 
 from . import bandpower, shading, steering
+
+try:  # the compiled inner loops (service/engine/_kernels.c); numpy forms the same sums without them
+    from . import _kernels
+except ImportError:  # pragma: no cover - exercised by installs without a C compiler
+    _kernels = None
+
+#: True when the compiled inner loops are installed (see DEVELOPERS.md, "The compiled kernels").
+COMPILED_AVAILABLE = _kernels is not None
 from .directions import unit_vectors
 from .geometry import ArrayGeometry
 
@@ -41,6 +49,8 @@ MAX_STEERING_BYTES = 512 * 2**20
 _ELEMENTWISE_MAX = 128
 #: Fewest sensors for which the mirror-pair rows pay for their extra pass over each block.
 _PAIR_BASIS_MIN_SENSORS = 48
+#: Beams per vector of the compiled loop (LANES in _kernels.c).
+_KERNEL_LANES = 8
 
 
 @dataclass(frozen=True)
@@ -137,7 +147,9 @@ class _Basis:
         # Every input channel feeds an active sensor, in order: no gather needed.
         self._cols = None if np.array_equal(channels, np.arange(geometry.n_input_channels)) else channels
         if pairs is None:
-            self.n_rows = len(channels)
+            self.n_rows = self.n_sums = len(channels)
+            # Row r = ca x[ia] + cb x[ib] in input channels, for the compiled write.
+            self._kernel_rows = (channels, channels, np.ones(len(channels)), np.zeros(len(channels)))
             return
         pa, pb = pairs
         two = pa != pb
@@ -146,6 +158,16 @@ class _Basis:
         self._sa, self._sb = _as_index(pa), _as_index(pb)
         self._da, self._db = _as_index(pa[two]), _as_index(pb[two])
         self._centre = np.nonzero(~two)[0]
+        half = np.where(two, 1.0, 0.5)  # a centre sensor's row is x_c = (x_c + x_c) / 2
+        self._kernel_rows = (channels[np.concatenate([pa, pa[two]])], channels[np.concatenate([pb, pb[two]])],
+                             np.concatenate([half, np.ones(int(two.sum()))]),
+                             np.concatenate([half, -np.ones(int(two.sum()))]))
+
+    def kernel_rows(self) -> tuple:
+        """(ia, ib, ca, cb) with row r = ca[r] x[:, ia[r]] + cb[r] x[:, ib[r]], typed for the compiled write."""
+        ia, ib, ca, cb = self._kernel_rows
+        return (np.ascontiguousarray(ia, np.int32), np.ascontiguousarray(ib, np.int32),
+                np.ascontiguousarray(ca, np.float32), np.ascontiguousarray(cb, np.float32))
 
     def write(self, out: np.ndarray, chunk: np.ndarray) -> None:
         """Rows (n_rows, frames) of ``out`` from input frames ``chunk`` (frames, channels)."""
@@ -173,7 +195,7 @@ class _Steering:
     """Precomputed steering data for one beam set (built off the hot path)."""
 
     def __init__(self, geometry, basis: _Basis, sound_speed_mps, samplerate_hz, bulk_delay, n_fft, valid,
-                 beams: BeamSet):
+                 beams: BeamSet, compiled: bool):
         self.beams = beams
         pos = geometry.centred_positions_m
         gain = geometry.active_gain
@@ -198,9 +220,11 @@ class _Steering:
             h = steering.steering_spectra(bulk_delay + tau, w, n_fft, bins)
             pairs = basis.pairs
             symmetric = pairs is not None and np.allclose(w[:, pairs[0]], w[:, pairs[1]], rtol=1e-9, atol=0.0)
-            return _BeamProduct(h, basis, symmetric, bulk_delay, n_fft, bins)
+            return _BeamProduct(h, basis, symmetric, bulk_delay, n_fft, bins, compiled)
 
         self.power = product(beams.power_deg, power_bins)
+        # the real form leaves out a delay of `lag` samples; each band's factor puts it back
+        self.bands = [ev.delayed(self.power.lag) for ev in self.bands]
         self.audio = product(beams.audio_deg, np.arange(n_fft // 2 + 1)) if len(beams.audio_deg) else None
 
     @property
@@ -209,58 +233,69 @@ class _Steering:
 
 
 class _BeamProduct:
-    """Steered spectra ``Y[k, b] = sum_m H[k, b, m] X[m, k]`` of a set of beams on given bins,
-    from the spectra of the history rows (:class:`_Basis`).
+    """Steered spectra ``Y[j, b, k] = sum_m H[k, b, m] X[j, m, k]`` of a set of beams on given bins,
+    for blocks ``j``, from the spectra of the history rows (:class:`_Basis`).
 
-    Three ways to form the same sum, chosen once from the shapes (measured
-    in bench/): an element-wise product for few beams × sensors (one small
-    matrix product per bin costs more in call overhead than it saves);
-    otherwise, for beams symmetric about the phase centre of a symmetric
-    array, real products of half the size (:func:`_paired`: half the
-    steering bytes streamed per block); or one small complex matrix product
-    per bin.
+    For beams symmetric about the phase centre of a symmetric array the
+    steering is real and half the size (:func:`_paired`); otherwise it is
+    complex. The sum is formed by the compiled loop when it is installed
+    (``compiled``), which reads the steering once for up to four blocks and
+    works in the spectra's own layout; without it by numpy, in one of two
+    ways chosen from the shapes (measured in bench/): an element-wise product
+    for few beams × sensors, or one small matrix product per bin.
 
     ``__call__`` returns ``(Y, lag)``: in the real form the common factor
     ``exp(-j w D)`` is left out, so the true output is ``Y`` delayed by
-    ``lag`` whole samples (a circular shift of the frame for audio, a phase
-    ramp over the bins for power, see :meth:`with_lag`).
+    ``lag`` whole samples (a circular shift of the frame for audio; for power
+    the band-power factor absorbs it, see
+    :meth:`bandpower.BandPowerEvaluator.delayed`).
     """
 
     def __init__(self, h: np.ndarray, basis: _Basis, symmetric: bool, bulk_delay: int, n_fft: int,
-                 bins: np.ndarray):
+                 bins: np.ndarray, compiled: bool):
         n_bins, n_beams, n_sensors = h.shape
-        self.real_form, self.elementwise, self.lag, self.ramp = False, False, 0, None
-        if n_beams * n_sensors <= _ELEMENTWISE_MAX:
-            self.h, self.elementwise = np.ascontiguousarray(basis.transform(h).transpose(1, 2, 0)), True
-        elif symmetric:
-            self.h, self.real_form, self.lag = _paired(h, basis.pairs, bulk_delay, n_fft, bins), True, bulk_delay
-            self.n_sums = basis.n_sums
-            self.ramp = np.exp(-2j * np.pi * np.asarray(bins) * bulk_delay / n_fft).astype(np.complex64)
+        self.n_beams, self.first_bin, self.n_bins = n_beams, int(bins[0]), n_bins
+        self.real_form, self.lag = bool(symmetric), bulk_delay if symmetric else 0
+        self.n_plain = basis.n_sums if symmetric else basis.n_rows
+        self.compiled, self.elementwise = bool(compiled), False
+        q = _paired(h, basis.pairs, bulk_delay, n_fft, bins) if symmetric else basis.transform(h)
+        if self.compiled:
+            # (beam groups, bins, rows, beams of the group), real and imaginary planes
+            groups = -(-n_beams // _KERNEL_LANES)
+            planes = [np.pad(part, ((0, 0), (0, groups * _KERNEL_LANES - n_beams), (0, 0)))
+                      .reshape(n_bins, groups, _KERNEL_LANES, -1).transpose(1, 0, 3, 2)
+                      for part in ((q,) if symmetric else (q.real, q.imag))]
+            self.h = [np.ascontiguousarray(part, dtype=np.float32) for part in planes]
+        elif n_beams * n_sensors <= _ELEMENTWISE_MAX and not symmetric:
+            self.h, self.elementwise = np.ascontiguousarray(q.transpose(1, 2, 0)), True
         else:
-            self.h = np.ascontiguousarray(basis.transform(h), dtype=np.complex64)
+            self.h = [np.ascontiguousarray(q, dtype=np.float32 if symmetric else np.complex64)]
 
     @property
     def nbytes(self) -> int:
-        return self.h.nbytes
+        return sum(part.nbytes for part in self.h) if isinstance(self.h, list) else self.h.nbytes
 
-    def __call__(self, spec: np.ndarray) -> tuple:
-        """Steered spectra (bins, beams, K) and their lag from row spectra (rows, bins, K)."""
-        if self.elementwise:
-            if spec.shape[2] == 1:
-                return (self.h * spec[None, :, :, 0]).sum(axis=1).T[:, :, None], 0
-            return (self.h[..., None] * spec[None]).sum(axis=1).transpose(1, 0, 2), 0
-        v = np.ascontiguousarray(spec.transpose(1, 0, 2))  # (bins, rows, K)
+    def __call__(self, spec: np.ndarray, offset: int = 0) -> tuple:
+        """Steered spectra (blocks, beams, bins) and their lag from row spectra
+        ``spec`` (blocks, rows, n), complex64, C order, whose ``spec[..., i]``
+        is bin ``offset + i``."""
+        k0 = self.first_bin - offset
+        n_blocks, n_rows, width = spec.shape
+        if self.compiled:
+            y = np.empty((n_blocks, self.n_beams, self.n_bins), np.complex64)
+            _kernels.steer(self.h[0], self.h[1] if len(self.h) > 1 else None, spec, n_blocks, width, k0,
+                           self.n_bins, n_rows, self.n_plain, self.n_beams, y)
+            return y, self.lag
+        band = spec[:, :, k0:k0 + self.n_bins]
+        if self.elementwise:  # h: (beams, rows, bins)
+            return (self.h[None] * band[:, None]).sum(axis=2), 0
+        v = band.transpose(2, 1, 0).copy()  # (bins, rows, blocks), a copy: turned in place below
         if not self.real_form:
-            return np.matmul(self.h, v), 0
-        v[:, self.n_sums:] *= np.complex64(1j)
-        n_bins, n_rows, k = v.shape
-        y = np.matmul(self.h, v.view(np.float32).reshape(n_bins, n_rows, 2 * k))
-        return y.view(np.complex64), self.lag
-
-    def with_lag(self, spec: np.ndarray) -> np.ndarray:
-        """Steered spectra (bins, beams, K) with the lag applied as a phase ramp."""
-        y, lag = self(spec)
-        return y * self.ramp[:, None, None] if lag else y
+            return np.matmul(self.h[0], v).transpose(2, 1, 0), 0
+        v[:, self.n_plain:] *= np.complex64(1j)
+        n_bins, _, k = v.shape
+        y = np.matmul(self.h[0], v.view(np.float32).reshape(n_bins, n_rows, 2 * k))
+        return y.view(np.complex64).transpose(2, 1, 0), self.lag
 
 
 def _mirror_pairs(pos: np.ndarray, gain: np.ndarray, trims: np.ndarray):
@@ -328,6 +363,11 @@ class Beamformer:
         beyond D.
     crossfade_s : float
         Length of the linear crossfade of audio beams after a retarget.
+    compiled : bool or None
+        Form the per-bin sums and the history rows with the compiled loops
+        (True), with numpy (False), or with the compiled loops when they are
+        installed (None, the default). Both give the same output to float32
+        rounding.
 
     Notes
     -----
@@ -353,7 +393,7 @@ class Beamformer:
 
     def __init__(self, geometry: ArrayGeometry, sound_speed_mps: float, samplerate_hz: float,
                  block_frames: int, beams: BeamSet, power_batch_blocks: int = 1,
-                 crossfade_s: float = CROSSFADE_S):
+                 crossfade_s: float = CROSSFADE_S, compiled: bool | None = None):
         if block_frames < 1:
             raise ValueError(f"block_frames={block_frames!r}: expected a positive whole number")
         if power_batch_blocks < 1:
@@ -363,10 +403,14 @@ class Beamformer:
         self.samplerate_hz = float(samplerate_hz)
         self.block_frames = int(block_frames)
         self.power_batch_blocks = int(power_batch_blocks)
+        if compiled and not COMPILED_AVAILABLE:
+            raise ValueError("compiled=True: the compiled kernels are not installed (reinstall beamtap with a C compiler)")
+        self.compiled = COMPILED_AVAILABLE if compiled is None else bool(compiled)
         self.crossfade_frames = max(1, int(round(crossfade_s * self.samplerate_hz)))
         self.bulk_delay_samples = steering.bulk_delay_samples(
             geometry.max_steering_delay_s(self.sound_speed_mps), self.samplerate_hz)
         self._basis = _Basis(geometry)
+        self._kernel_rows = self._basis.kernel_rows()
         self._steer = self._build(beams)
         self.reset(0)
 
@@ -383,7 +427,7 @@ class Beamformer:
     def _build(self, beams: BeamSet) -> _Steering:
         n_fft = self._fft_size_for(beams)
         return _Steering(self.geometry, self._basis, self.sound_speed_mps, self.samplerate_hz,
-                         self.bulk_delay_samples, n_fft, self.block_frames, beams), n_fft
+                         self.bulk_delay_samples, n_fft, self.block_frames, beams, self.compiled), n_fft
 
     def apply(self, prepared) -> BlockResult:
         """Switch to prepared steering at the current block boundary.
@@ -494,7 +538,7 @@ class Beamformer:
             pos += b
             if b == to_boundary:
                 self._pending_start.append(self._sample - self.block_frames)
-                self._pending_spec.append(spec[:, steer.k1:steer.k2 + 1])
+                self._pending_spec.append(spec[:, steer.k1:steer.k2 + 1])  # a view: spec is new every frame
                 if len(self._pending_start) >= self.power_batch_blocks:
                     released.append(self._release_power())
         rows = _concat_results(released, len(steer.bands), len(steer.beams.power_deg))
@@ -511,7 +555,12 @@ class Beamformer:
         if self._pos + b > self._buf.shape[1]:
             self._buf[:, :n_fft] = self._buf[:, self._pos - n_fft:self._pos]
             self._pos = n_fft
-        self._basis.write(self._buf[:, self._pos:self._pos + b], chunk)
+        if self.compiled:
+            ia, ib, ca, cb = self._kernel_rows
+            chunk = np.ascontiguousarray(chunk)
+            _kernels.rows(chunk, b, chunk.shape[1], ia, ib, ca, cb, len(ia), self._buf, self._buf.shape[1], self._pos)
+        else:
+            self._basis.write(self._buf[:, self._pos:self._pos + b], chunk)
         self._pos += b
         return self._buf[:, self._pos - n_fft:self._pos]
 
@@ -531,11 +580,10 @@ class Beamformer:
         steer = self._steer[0]
         if not self._pending_start:
             return _empty_rows(len(steer.bands), len(steer.beams.power_deg))
-        pending = self._pending_spec
-        spec = pending[0][:, :, None] if len(pending) == 1 else np.stack(pending, axis=-1)  # (rows, bins, K)
+        spec = np.stack(self._pending_spec)  # (K, rows, bins from k1)
         starts = np.array(self._pending_start, np.int64)
         self._pending_start, self._pending_spec = [], []
-        y = steer.power.with_lag(spec).transpose(2, 1, 0)  # (K, beams, bins)
+        y, _ = steer.power(spec, offset=steer.k1)  # (K, beams, bins); the band factors hold the lag
         out = np.empty((len(starts), len(steer.bands), y.shape[1]), np.float32)
         for i, ev in enumerate(steer.bands):
             lo = int(ev.bins[0]) - steer.k1
@@ -546,9 +594,9 @@ class Beamformer:
 
 def _beam_audio(product: _BeamProduct, spec: np.ndarray, b: int, n_fft: int) -> np.ndarray:
     """The last ``b`` samples of the audio beams from one frame's channel spectra."""
-    y, lag = product(spec[:, :, None])
-    frame = sfft.irfft(y[:, :, 0], n=n_fft, axis=0)
-    return frame[n_fft - b - lag:n_fft - lag]
+    y, lag = product(spec[None])
+    frame = sfft.irfft(y[0], n=n_fft, axis=1)  # (beams, n_fft)
+    return frame[:, n_fft - b - lag:n_fft - lag].T
 
 
 def _empty_rows(n_bands: int, n_beams: int) -> tuple:
