@@ -73,6 +73,9 @@ class Service:
         log.info("beams: %d power, %d audio; bulk delay D = %d samples (%.3f ms); latency budget block + D = "
                  "%.2f ms", s["power_beams"], s["audio_beams"], s["bulk_delay_samples"], s["bulk_delay_ms"],
                  s["latency_budget_ms"])
+        if not self.pipeline.engine.compiled:
+            log.warning("engine: the compiled kernels are not installed, numpy forms the sums (slower; "
+                        "reinstall beamtap with a C compiler, see DEVELOPERS.md)")
         for w in s["warnings"]:
             log.warning(w)
         # Everything built so far lives for the whole run: keep it out of the cyclic garbage

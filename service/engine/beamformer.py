@@ -459,7 +459,7 @@ class Beamformer:
         Pending power blocks are dropped; call :meth:`flush` first to keep them.
         """
         n_fft = self._steer[1]
-        self._buf = np.zeros((self._basis.n_rows, n_fft + 4 * self.block_frames), np.float32)
+        self._buf = np.zeros((self._basis.n_rows, self._history_frames(n_fft)), np.float32)
         self._pos = n_fft
         self._sample = int(first_sample)
         self._power_origin = int(first_sample)
@@ -467,9 +467,14 @@ class Beamformer:
         self._pending_spec: list[np.ndarray] = []
         self._fade_from = None
 
+    def _history_frames(self, n_fft: int) -> int:
+        # The last n_fft frames are moved to the front when the buffer is full: room for four
+        # frames' worth of new blocks keeps that copy to a few percent of the block's work.
+        return n_fft + max(4 * self.block_frames, 4 * n_fft)
+
     def _grow_history(self, n_fft: int) -> None:
         keep = self._buf[:, : self._pos]
-        buf = np.zeros((self._basis.n_rows, n_fft + 4 * self.block_frames), np.float32)
+        buf = np.zeros((self._basis.n_rows, self._history_frames(n_fft)), np.float32)
         take = min(keep.shape[1], n_fft)
         buf[:, n_fft - take: n_fft] = keep[:, keep.shape[1] - take:]
         self._buf, self._pos = buf, n_fft
