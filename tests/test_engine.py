@@ -344,6 +344,8 @@ def test_compiled_kernels_equal_numpy(rng, geo):
         assert power_a.shape == power_b.shape and len(power_a) == len(x) // 1024
         assert np.max(np.abs(power_a - power_b)) < 1e-3
         assert np.max(np.abs(audio_a - audio_b)) < 1e-5 * np.max(np.abs(audio_b))
+    if a.mirror_pair_rows:  # a fan over 0-180° on a symmetric array: mirror images come out of one pass
+        assert len(a._steer[0].power.main_out) < len(beams.power_deg)
 
 
 def test_compiled_kernels_refuse_bad_buffers():
@@ -355,11 +357,14 @@ def test_compiled_kernels_refuse_bad_buffers():
     h = np.zeros((1, 4, 2, 8), np.float32)
     v = np.zeros((1, 2, 4), np.complex64)
     y = np.zeros((1, 8, 4), np.complex64)
-    _kernels.steer(h, None, v, 1, 4, 0, 4, 2, 2, 8, y)  # the right sizes pass
+    main, mirror = np.arange(8, dtype=np.int32), np.full(8, -1, np.int32)
+    _kernels.steer(h, None, v, 1, 4, 0, 4, 2, 2, 8, main, mirror, 8, y)  # the right sizes pass
     with pytest.raises(ValueError, match="y: buffer"):
-        _kernels.steer(h, None, v, 1, 4, 0, 4, 2, 2, 8, y[:, :4])
-    with pytest.raises(ValueError, match="bin range"):
-        _kernels.steer(h, None, v, 1, 4, 1, 4, 2, 2, 8, y)
+        _kernels.steer(h, None, v, 1, 4, 0, 4, 2, 2, 8, main, mirror, 8, y[:, :4])
+    with pytest.raises(ValueError, match="bin or row range"):
+        _kernels.steer(h, None, v, 1, 4, 1, 4, 2, 2, 8, main, mirror, 8, y)
+    with pytest.raises(ValueError, match="output beam index"):
+        _kernels.steer(h, None, v, 1, 4, 0, 4, 2, 2, 8, main, mirror + 9, 8, y)
     x = np.zeros((10, 3), np.float32)
     idx, ones = np.array([0, 3], np.int32), np.ones(2, np.float32)
     with pytest.raises(ValueError, match="channel index"):

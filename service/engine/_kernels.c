@@ -91,46 +91,61 @@ static inline __attribute__((always_inline)) void group_rows(
 static inline __attribute__((always_inline)) void bin_group(
     const float *hr, const float *hi, const float *v, Py_ssize_t v_bins, Py_ssize_t block_stride, Py_ssize_t kk,
     Py_ssize_t n_rows, Py_ssize_t n_plain, Py_ssize_t stride, const int nk, const int cplx, float *y,
-    Py_ssize_t n_beams, Py_ssize_t n_bins, Py_ssize_t nb)
+    const int *main_out, const int *mirror_out, Py_ssize_t n_out, Py_ssize_t n_bins, Py_ssize_t nb)
 {
-    v8 ar[MAX_BLOCKS] = {{0}}, ai[MAX_BLOCKS] = {{0}};
-    group_rows(hr, hi, v, v_bins, block_stride, kk, 0, n_plain, stride, 0, nk, cplx, ar, ai);
-    group_rows(hr, hi, v, v_bins, block_stride, kk, n_plain, n_rows, stride, 1, nk, cplx, ar, ai);
-    for (int j = 0; j < nk; j++)
+    /* a: the plain rows' sum, then t: the turned rows' sum; beam = a + t, its mirror image a - t */
+    v8 a_re[MAX_BLOCKS] = {{0}}, a_im[MAX_BLOCKS] = {{0}}, t_re[MAX_BLOCKS] = {{0}}, t_im[MAX_BLOCKS] = {{0}};
+    group_rows(hr, hi, v, v_bins, block_stride, kk, 0, n_plain, stride, 0, nk, cplx, a_re, a_im);
+    group_rows(hr, hi, v, v_bins, block_stride, kk, n_plain, n_rows, stride, 1, nk, cplx, t_re, t_im);
+    for (int j = 0; j < nk; j++) {
+        v8 p_re = a_re[j] + t_re[j], p_im = a_im[j] + t_im[j];
+        v8 m_re = a_re[j] - t_re[j], m_im = a_im[j] - t_im[j];
         for (Py_ssize_t b = 0; b < nb; b++) {
-            float *out = y + 2 * ((j * n_beams + b) * n_bins);
-            out[0] = ar[j][b];
-            out[1] = ai[j][b];
+            float *out = y + 2 * ((j * n_out + main_out[b]) * n_bins);
+            out[0] = p_re[b];
+            out[1] = p_im[b];
+            if (mirror_out[b] >= 0) {
+                out = y + 2 * ((j * n_out + mirror_out[b]) * n_bins);
+                out[0] = m_re[b];
+                out[1] = m_im[b];
+            }
         }
+    }
 }
 
 /* y[j, b, k] = sum_r h[k, r, b] v[j, r, k0 + k] over blocks j, beams b, bins k.
  * h_re, h_im: float32 (beam groups, bins, rows, LANES), the beams padded to
  * whole groups, h_im NULL for a real steering matrix; v: complex64 (blocks,
  * rows, v_bins) interleaved; rows r >= n_plain are multiplied by j first (the
- * difference rows of mirror pairs); y: complex64 (blocks, beams, bins).
+ * difference rows of mirror pairs); y: complex64 (blocks, n_out, bins).
+ * Beam b is written to output beam main_out[b]; where mirror_out[b] >= 0,
+ * the sum with the turned rows' part negated goes to output beam
+ * mirror_out[b] (the mirror-image direction of a symmetric array, whose
+ * steering on the pair rows is the same but for the sign of the difference
+ * rows), so one pass forms both.
  *
  * Loop order: a group's steering is read once, front to back, for up to
  * MAX_BLOCKS blocks; bins run inside groups so that the output lines being
  * written (one per beam and block) stay in the first-level cache. */
 CLONES static void steer(const float *h_re, const float *h_im, const float *v, Py_ssize_t n_blocks,
                          Py_ssize_t v_bins, Py_ssize_t k0, Py_ssize_t n_bins, Py_ssize_t n_rows,
-                         Py_ssize_t n_plain, Py_ssize_t n_beams, float *y)
+                         Py_ssize_t n_plain, Py_ssize_t n_beams, const int *main_out, const int *mirror_out,
+                         Py_ssize_t n_out, float *y)
 {
     Py_ssize_t block_stride = 2 * n_rows * v_bins;
     Py_ssize_t group_size = n_bins * n_rows * LANES;
     for (Py_ssize_t j0 = 0; j0 < n_blocks; j0 += MAX_BLOCKS) {
         Py_ssize_t nk = n_blocks - j0 < MAX_BLOCKS ? n_blocks - j0 : MAX_BLOCKS;
         const float *vj = v + j0 * block_stride;
-        float *yj = y + 2 * j0 * n_beams * n_bins;
+        float *yj = y + 2 * j0 * n_out * n_bins;
         for (Py_ssize_t b0 = 0; b0 < n_beams; b0 += LANES) {
             Py_ssize_t nb = n_beams - b0 < LANES ? n_beams - b0 : LANES;
             for (Py_ssize_t k = 0; k < n_bins; k++) {
                 const float *hr = h_re + (b0 / LANES) * group_size + k * n_rows * LANES;
                 const float *hi = h_im == NULL ? NULL : h_im + (b0 / LANES) * group_size + k * n_rows * LANES;
-                float *yk = yj + 2 * (b0 * n_bins + k);
+                float *yk = yj + 2 * k;
 #define BIN_GROUP(NK, CPLX) bin_group(hr, hi, vj, v_bins, block_stride, k0 + k, n_rows, n_plain, LANES, NK, CPLX, \
-                                     yk, n_beams, n_bins, nb)
+                                     yk, main_out + b0, mirror_out + b0, n_out, n_bins, nb)
                 if (hi == NULL) {
                     switch (nk) {
                     case 1: BIN_GROUP(1, 0); break;
@@ -185,30 +200,42 @@ static int need(Py_buffer *buf, Py_ssize_t items, Py_ssize_t item_size, const ch
 
 static PyObject *py_steer(PyObject *self, PyObject *args)
 {
-    Py_buffer h_re, h_im = {0}, v, y;
+    (void)self;
+    Py_buffer h_re, h_im = {0}, v, main_out, mirror_out, y;
     PyObject *h_im_obj;
-    Py_ssize_t n_blocks, v_bins, k0, n_bins, n_rows, n_plain, n_beams;
-    if (!PyArg_ParseTuple(args, "y*Oy*nnnnnnnw*", &h_re, &h_im_obj, &v, &n_blocks, &v_bins, &k0, &n_bins, &n_rows,
-                          &n_plain, &n_beams, &y))
+    Py_ssize_t n_blocks, v_bins, k0, n_bins, n_rows, n_plain, n_beams, n_out;
+    if (!PyArg_ParseTuple(args, "y*Oy*nnnnnnny*y*nw*", &h_re, &h_im_obj, &v, &n_blocks, &v_bins, &k0, &n_bins,
+                          &n_rows, &n_plain, &n_beams, &main_out, &mirror_out, &n_out, &y))
         return NULL;
     int has_im = h_im_obj != Py_None;
     int ok = has_im ? PyObject_GetBuffer(h_im_obj, &h_im, PyBUF_SIMPLE) == 0 : 1;
     Py_ssize_t cells = n_bins * n_rows * ((n_beams + LANES - 1) / LANES * LANES);
-    ok = ok && n_blocks >= 0 && n_bins >= 0 && n_rows >= 0 && n_plain >= 0 && n_plain <= n_rows && n_beams >= 0 && k0 >= 0 && k0 + n_bins <= v_bins;
-    if (ok == 0 && !PyErr_Occurred())
-        PyErr_SetString(PyExc_ValueError, "steer: bin range outside the spectra");
+    if (ok && !(n_blocks >= 0 && n_bins >= 0 && n_rows >= 0 && n_plain >= 0 && n_plain <= n_rows && n_beams >= 0
+                && k0 >= 0 && k0 + n_bins <= v_bins)) {
+        PyErr_SetString(PyExc_ValueError, "steer: bin or row range outside the spectra");
+        ok = 0;
+    }
     ok = ok && need(&h_re, cells, 4, "h_re") && (!has_im || need(&h_im, cells, 4, "h_im"))
-         && need(&v, n_blocks * n_rows * v_bins, 8, "v") && need(&y, n_blocks * n_bins * n_beams, 8, "y");
+         && need(&v, n_blocks * n_rows * v_bins, 8, "v") && need(&y, n_blocks * n_bins * n_out, 8, "y")
+         && need(&main_out, n_beams, 4, "main_out") && need(&mirror_out, n_beams, 4, "mirror_out");
+    const int *mo = (const int *)main_out.buf, *mm = (const int *)mirror_out.buf;
+    for (Py_ssize_t b = 0; ok && b < n_beams; b++)
+        if (mo[b] < 0 || mo[b] >= n_out || mm[b] < -1 || mm[b] >= n_out) {
+            PyErr_SetString(PyExc_ValueError, "steer: output beam index outside the output");
+            ok = 0;
+        }
     if (ok) {
         Py_BEGIN_ALLOW_THREADS
-        steer((const float *)h_re.buf, has_im ? (const float *)h_im.buf : NULL, (const float *)v.buf, n_blocks, v_bins, k0,
-              n_bins, n_rows, n_plain, n_beams, (float *)y.buf);
+        steer((const float *)h_re.buf, has_im ? (const float *)h_im.buf : NULL, (const float *)v.buf, n_blocks, v_bins,
+              k0, n_bins, n_rows, n_plain, n_beams, mo, mm, n_out, (float *)y.buf);
         Py_END_ALLOW_THREADS
     }
     PyBuffer_Release(&h_re);
     if (has_im && h_im.obj != NULL)
         PyBuffer_Release(&h_im);
     PyBuffer_Release(&v);
+    PyBuffer_Release(&main_out);
+    PyBuffer_Release(&mirror_out);
     PyBuffer_Release(&y);
     if (!ok)
         return NULL;
@@ -217,6 +244,7 @@ static PyObject *py_steer(PyObject *self, PyObject *args)
 
 static PyObject *py_rows(PyObject *self, PyObject *args)
 {
+    (void)self;
     Py_buffer x, ia, ib, ca, cb, out;
     Py_ssize_t frames, channels, n_rows, out_cols, col;
     if (!PyArg_ParseTuple(args, "y*nny*y*y*y*nw*nn", &x, &frames, &channels, &ia, &ib, &ca, &cb, &n_rows, &out,
@@ -254,7 +282,8 @@ static PyObject *py_rows(PyObject *self, PyObject *args)
 
 static PyMethodDef methods[] = {
     {"steer", py_steer, METH_VARARGS,
-     "steer(h_re, h_im, v, n_blocks, v_bins, k0, n_bins, n_rows, n_plain, n_beams, y): per-bin steered sums."},
+     "steer(h_re, h_im, v, n_blocks, v_bins, k0, n_bins, n_rows, n_plain, n_beams, main_out, mirror_out, n_out, y): "
+     "per-bin steered sums."},
     {"rows", py_rows, METH_VARARGS,
      "rows(x, frames, channels, ia, ib, ca, cb, n_rows, out, out_cols, col): history rows from input frames."},
     {NULL, NULL, 0, NULL},

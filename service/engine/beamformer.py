@@ -296,9 +296,13 @@ class _BeamProduct:
         self.compiled, self.elementwise = bool(compiled), False
         q = _paired(h, basis.pairs, bulk_delay, n_fft, bins) if symmetric else basis.transform(h)
         if self.compiled:
+            # Beams formed in the loop; a mirror image comes out of its partner's pass.
+            self.main_out, self.mirror_out = _mirror_beams(q, basis.n_sums) if symmetric else (
+                np.arange(n_beams, dtype=np.int32), np.full(n_beams, -1, np.int32))
+            q, formed = q[:, self.main_out], len(self.main_out)
             # (beam groups, bins, rows, beams of the group), real and imaginary planes
-            groups = -(-n_beams // _KERNEL_LANES)
-            planes = [np.pad(part, ((0, 0), (0, groups * _KERNEL_LANES - n_beams), (0, 0)))
+            groups = -(-formed // _KERNEL_LANES)
+            planes = [np.pad(part, ((0, 0), (0, groups * _KERNEL_LANES - formed), (0, 0)))
                       .reshape(n_bins, groups, _KERNEL_LANES, -1).transpose(1, 0, 3, 2)
                       for part in ((q,) if symmetric else (q.real, q.imag))]
             self.h = [np.ascontiguousarray(part, dtype=np.float32) for part in planes]
@@ -320,7 +324,8 @@ class _BeamProduct:
         if self.compiled:
             y = np.empty((n_blocks, self.n_beams, self.n_bins), np.complex64)
             _kernels.steer(self.h[0], self.h[1] if len(self.h) > 1 else None, spec, n_blocks, width, k0,
-                           self.n_bins, n_rows, self.n_plain, self.n_beams, y)
+                           self.n_bins, n_rows, self.n_plain, len(self.main_out), self.main_out, self.mirror_out,
+                           self.n_beams, y)
             return y, self.lag
         band = spec[:, :, k0:k0 + self.n_bins]
         if self.elementwise:  # h: (beams, rows, bins)
@@ -348,6 +353,35 @@ def _mirror_pairs(pos: np.ndarray, gain: np.ndarray, trims: np.ndarray):
         return None
     keep = m <= partner
     return m[keep], partner[keep]
+
+
+def _mirror_beams(q: np.ndarray, n_sums: int) -> tuple:
+    """Beams to form, and the mirror image each one also gives, from real pair-row steering.
+
+    On mirror-pair rows, the beam steered to the mirror image of a direction
+    (each sensor's delay that of its mirror sensor, e.g. azimuth θ and 180° − θ
+    on a line) has the same sum-row steering and the difference-row steering
+    negated. Returns int32 arrays ``(main, mirror)``: beam ``main[i]`` is
+    formed, and ``mirror[i]`` (or -1) is its image.
+    """
+    n_beams = q.shape[1]
+    s, d = q[:, :, :n_sums], q[:, :, n_sums:]
+    scale = float(np.max(np.abs(q))) or 1.0
+    partner = np.full(n_beams, -1)
+    if d.shape[2]:
+        # candidates by the sum rows at one bin, then the full check
+        key = s[len(s) // 2].reshape(n_beams, -1)
+        for b in range(n_beams):
+            if partner[b] >= 0:
+                continue
+            for c in np.nonzero(np.max(np.abs(key - key[b]), axis=1) <= 1e-6 * scale)[0]:
+                if (c != b and partner[c] < 0 and np.max(np.abs(s[:, c] - s[:, b])) <= 1e-6 * scale
+                        and np.max(np.abs(d[:, c] + d[:, b])) <= 1e-6 * scale
+                        and np.max(np.abs(d[:, b])) > 1e-6 * scale):
+                    partner[b], partner[c] = c, b
+                    break
+    main = [b for b in range(n_beams) if partner[b] < 0 or b < partner[b]]
+    return np.array(main, np.int32), np.array([partner[b] for b in main], np.int32)
 
 
 def _as_index(idx: np.ndarray):
