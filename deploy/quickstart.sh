@@ -10,11 +10,12 @@ cd "$(dirname "$0")/.."
 what="${1:-demo}"
 case "$what" in demo|test|setup) ;; *) echo "usage: sh deploy/quickstart.sh demo|test|setup" >&2; exit 2;; esac
 
-# System packages: PortAudio for the sound card; for the tests also the ALSA
-# plugins and JACK (virtual sound cards), and libzmq/msgpack-c with a C
-# compiler (the second-language subscriber example).
-runtime_pkgs="libportaudio2 python3-venv"
-test_pkgs="libasound2-plugins jackd2 alsa-utils gcc libc6-dev libzmq3-dev libmsgpack-dev pkg-config"
+# System packages: PortAudio for the sound card, a C compiler and Python's
+# headers for the engine's compiled kernels; for the tests also the ALSA
+# plugins and JACK (virtual sound cards), and libzmq/msgpack-c (the
+# second-language subscriber example).
+runtime_pkgs="libportaudio2 python3-venv gcc libc6-dev python3-dev"
+test_pkgs="libasound2-plugins jackd2 alsa-utils libzmq3-dev libmsgpack-dev pkg-config"
 pkgs="$runtime_pkgs"
 [ "$what" = test ] && pkgs="$pkgs $test_pkgs"
 
