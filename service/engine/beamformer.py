@@ -30,6 +30,8 @@ import numpy as np
 import scipy.fft as sfft
 
 from . import bandpower, shading, steering
+from .directions import unit_vectors
+from .geometry import ArrayGeometry
 
 try:  # the compiled inner loops (service/engine/_kernels.c); numpy forms the same sums without them
     from . import _kernels
@@ -74,8 +76,6 @@ def _irfft_rows(spec: np.ndarray, n: int) -> np.ndarray:
 
 #: True when the compiled inner loops are installed (see DEVELOPERS.md, "The compiled kernels").
 COMPILED_AVAILABLE = _kernels is not None
-from .directions import unit_vectors
-from .geometry import ArrayGeometry
 
 #: Default audio crossfade after a retarget, seconds.
 CROSSFADE_S = 0.010
@@ -366,18 +366,21 @@ def _mirror_beams(q: np.ndarray, n_sums: int) -> tuple:
     """
     n_beams = q.shape[1]
     s, d = q[:, :, :n_sums], q[:, :, n_sums:]
-    scale = float(np.max(np.abs(q))) or 1.0
+    tol = 1e-6 * (float(np.max(np.abs(q))) or 1.0)
     partner = np.full(n_beams, -1)
     if d.shape[2]:
-        # candidates by the sum rows at one bin, then the full check
-        key = s[len(s) // 2].reshape(n_beams, -1)
+        # Candidates: beams whose sum rows at one bin project to nearly the same number
+        # (sorted, so the search stays O(n log n) for large beam sets); then the full check.
+        key = s[len(s) // 2].reshape(n_beams, -1) @ np.random.default_rng(0).standard_normal(s.shape[2])
+        order = np.argsort(key)
+        spread = tol * np.sqrt(s.shape[2]) * 4.0
         for b in range(n_beams):
-            if partner[b] >= 0:
+            if partner[b] >= 0 or np.max(np.abs(d[:, b])) <= tol:  # no difference part: its own image
                 continue
-            for c in np.nonzero(np.max(np.abs(key - key[b]), axis=1) <= 1e-6 * scale)[0]:
-                if (c != b and partner[c] < 0 and np.max(np.abs(s[:, c] - s[:, b])) <= 1e-6 * scale
-                        and np.max(np.abs(d[:, c] + d[:, b])) <= 1e-6 * scale
-                        and np.max(np.abs(d[:, b])) > 1e-6 * scale):
+            lo, hi = np.searchsorted(key[order], [key[b] - spread, key[b] + spread])
+            for c in order[lo:hi]:
+                if (c != b and partner[c] < 0 and np.max(np.abs(s[:, c] - s[:, b])) <= tol
+                        and np.max(np.abs(d[:, c] + d[:, b])) <= tol):
                     partner[b], partner[c] = c, b
                     break
     main = [b for b in range(n_beams) if partner[b] < 0 or b < partner[b]]
