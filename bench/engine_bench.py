@@ -86,14 +86,15 @@ def _seconds_per_block(process, x, blocks, block=BLOCK):
     return (time.process_time() - t0) / blocks
 
 
-def measure(n_sensors, n_beams, n_audio, batch, blocks, repeats, reference=True, block=BLOCK):
+def measure(n_sensors, n_beams, n_audio, batch, blocks, repeats, reference=True, block=BLOCK, compiled=None):
     geo = ArrayGeometry.line(n_sensors, SPACING)
     power = fan(0.0, 180.0, 180.0 / (n_beams - 1))
     audio = fan(30.0, 150.0, 120.0 / max(n_audio - 1, 1))[:n_audio]
     rng = np.random.default_rng(1)
     x = (0.1 * rng.standard_normal((block * blocks, n_sensors))).astype(np.float32)
     tracemalloc.start()
-    bf = Beamformer(geo, C, FS, block, BeamSet(power, audio, bands_hz=[BAND]), power_batch_blocks=batch)
+    bf = Beamformer(geo, C, FS, block, BeamSet(power, audio, bands_hz=[BAND]), power_batch_blocks=batch,
+                    compiled=compiled)
     for i in range(4):  # warm up
         bf.process(x[i * block:(i + 1) * block])
     tracemalloc.reset_peak()
@@ -117,6 +118,7 @@ def measure(n_sensors, n_beams, n_audio, batch, blocks, repeats, reference=True,
     row = {
         "sensors": n_sensors, "beams": len(power), "audio_beams": n_audio, "block": block,
         "power_batch_blocks": batch, "fft_size": bf.fft_size, "mirror_pair_rows": bf.mirror_pair_rows,
+        "compiled": bf.compiled,
         "power_extra_latency_ms": 1e3 * (batch - 1) * block / FS,
         "steering_mb": bf.steering_bytes / 2**20, "memory_growth_bytes": int(grow),
         "engine_ms_per_block": 1e3 * t_engine, "engine_rtf": block / FS / t_engine, "host_steal_share": steal,
@@ -136,6 +138,8 @@ def main():
     blocks = 32 if args.quick else 64
     headline = [measure(16, 91, 4, b, blocks, repeats) for b in (1, 4)]
     headline += [measure(64, 181, 8, b, blocks, repeats) for b in (1, 4)]
+    # the same with numpy forming the sums (an install without a C compiler)
+    headline += [measure(s, nb, na, 4, blocks, repeats, compiled=False) for s, nb, na in ((16, 91, 4), (64, 181, 8))]
     scaling = []
     for s in (16, 32, 64):
         scaling.append(measure(s, 91, 4, 4, blocks // 2, repeats, reference=False))
@@ -154,15 +158,17 @@ def main():
           f"medians of {repeats} repeats of {blocks} blocks; CPU time of this process. Engine and "
           "reference alternate repeat by repeat; engine / reference is the median of the per-repeat ratios. "
           "rows: what the engine's history holds (sensor signals, or sums and differences of mirror pairs). "
+          "sums: the compiled kernels or numpy (an install without a C compiler). "
           "Host steal: share of the machine's CPU time the hypervisor gave to others meanwhile (/proc/stat).", "",
           "## Required cases", "",
-          "| sensors | power beams | audio beams | block | power batch (extra latency) | FFT | rows | steering MB "
-          "| engine ms/block | engine RTF | reference RTF | engine / reference | host steal |",
-          "|---|---|---|---|---|---|---|---|---|---|---|---|---|"]
+          "| sensors | power beams | audio beams | block | power batch (extra latency) | FFT | rows | sums "
+          "| steering MB | engine ms/block | engine RTF | reference RTF | engine / reference | host steal |",
+          "|---|---|---|---|---|---|---|---|---|---|---|---|---|---|"]
     for r in headline:
         md.append(f"| {r['sensors']} | {r['beams']} | {r['audio_beams']} | {r['block']} | "
                   f"{r['power_batch_blocks']} ({r['power_extra_latency_ms']:.1f} ms) | {r['fft_size']} | "
-                  f"{'mirror pairs' if r['mirror_pair_rows'] else 'sensors'} | {r['steering_mb']:.1f} | "
+                  f"{'mirror pairs' if r['mirror_pair_rows'] else 'sensors'} | "
+                  f"{'compiled' if r['compiled'] else 'numpy'} | {r['steering_mb']:.1f} | "
                   f"{r['engine_ms_per_block']:.3f} | {r['engine_rtf']:.1f} | "
                   f"{r['reference_rtf']:.2f} | {r['speedup_vs_reference']:.1f}x | {100 * r['host_steal_share']:.1f} % |")
     md += ["", "## How cost grows (power batch 4)", "",
@@ -172,7 +178,7 @@ def main():
         md.append(f"| {r['sensors']} | {r['beams']} | {r['audio_beams']} | {r['block']} | {r['fft_size']} | "
                   f"{r['engine_ms_per_block']:.3f} | {1e3 * r['engine_ms_per_block'] / r['block']:.2f} | "
                   f"{r['engine_rtf']:.1f} | {r['memory_growth_bytes']} B |")
-    md += ["", "Rerun: `python bench/engine_bench.py` (about two minutes).", ""]
+    md += ["", "Rerun: `python bench/engine_bench.py` (about three minutes).", ""]
     (HERE / "results.md").write_text("\n".join(md))
     print("\n".join(md))
 
