@@ -184,8 +184,7 @@ class _Basis:
         self._cols = None if np.array_equal(channels, np.arange(geometry.n_input_channels)) else channels
         if pairs is None:
             self.n_rows = self.n_sums = len(channels)
-            # Row r = ca x[ia] + cb x[ib] in input channels, for the compiled write.
-            self._kernel_rows = (channels, channels, np.ones(len(channels)), np.zeros(len(channels)))
+            self.kernel_rows = _typed_rows(channels, channels, np.ones(len(channels)), np.zeros(len(channels)))
             return
         pa, pb = pairs
         two = pa != pb
@@ -195,15 +194,10 @@ class _Basis:
         self._da, self._db = _as_index(pa[two]), _as_index(pb[two])
         self._centre = np.nonzero(~two)[0]
         half = np.where(two, 1.0, 0.5)  # a centre sensor's row is x_c = (x_c + x_c) / 2
-        self._kernel_rows = (channels[np.concatenate([pa, pa[two]])], channels[np.concatenate([pb, pb[two]])],
-                             np.concatenate([half, np.ones(int(two.sum()))]),
-                             np.concatenate([half, -np.ones(int(two.sum()))]))
-
-    def kernel_rows(self) -> tuple:
-        """(ia, ib, ca, cb) with row r = ca[r] x[:, ia[r]] + cb[r] x[:, ib[r]], typed for the compiled write."""
-        ia, ib, ca, cb = self._kernel_rows
-        return (np.ascontiguousarray(ia, np.int32), np.ascontiguousarray(ib, np.int32),
-                np.ascontiguousarray(ca, np.float32), np.ascontiguousarray(cb, np.float32))
+        self.kernel_rows = _typed_rows(channels[np.concatenate([pa, pa[two]])],
+                                       channels[np.concatenate([pb, pb[two]])],
+                                       np.concatenate([half, np.ones(int(two.sum()))]),
+                                       np.concatenate([half, -np.ones(int(two.sum()))]))
 
     def write(self, out: np.ndarray, chunk: np.ndarray) -> None:
         """Rows (n_rows, frames) of ``out`` from input frames ``chunk`` (frames, channels)."""
@@ -225,6 +219,13 @@ class _Basis:
         pa, pb = self.pairs
         # x_a = (s + d) / 2 and x_b = (s - d) / 2 for a pair; x_c = s for a centre sensor (a = b).
         return np.concatenate([0.5 * (h[..., pa] + h[..., pb]), 0.5 * (h[..., self._da] - h[..., self._db])], axis=-1)
+
+
+def _typed_rows(ia, ib, ca, cb) -> tuple:
+    """(ia, ib, ca, cb): row r = ca[r] x[:, ia[r]] + cb[r] x[:, ib[r]] in input channels, typed for the
+    compiled write (``_kernels.rows``)."""
+    return (np.ascontiguousarray(ia, np.int32), np.ascontiguousarray(ib, np.int32),
+            np.ascontiguousarray(ca, np.float32), np.ascontiguousarray(cb, np.float32))
 
 
 class _Steering:
@@ -307,13 +308,13 @@ class _BeamProduct:
                       for part in ((q,) if symmetric else (q.real, q.imag))]
             self.h = [np.ascontiguousarray(part, dtype=np.float32) for part in planes]
         elif n_beams * n_sensors <= _ELEMENTWISE_MAX and not symmetric:
-            self.h, self.elementwise = np.ascontiguousarray(q.transpose(1, 2, 0)), True
+            self.h, self.elementwise = [np.ascontiguousarray(q.transpose(1, 2, 0))], True
         else:
             self.h = [np.ascontiguousarray(q, dtype=np.float32 if symmetric else np.complex64)]
 
     @property
     def nbytes(self) -> int:
-        return sum(part.nbytes for part in self.h) if isinstance(self.h, list) else self.h.nbytes
+        return sum(part.nbytes for part in self.h)
 
     def __call__(self, spec: np.ndarray, offset: int = 0) -> tuple:
         """Steered spectra (blocks, beams, bins) and their lag from row spectra
@@ -329,7 +330,7 @@ class _BeamProduct:
             return y, self.lag
         band = spec[:, :, k0:k0 + self.n_bins]
         if self.elementwise:  # h: (beams, rows, bins)
-            return (self.h[None] * band[:, None]).sum(axis=2), 0
+            return (self.h[0][None] * band[:, None]).sum(axis=2), 0
         v = band.transpose(2, 1, 0).copy()  # (bins, rows, blocks), a copy: turned in place below
         if not self.real_form:
             return np.matmul(self.h[0], v).transpose(2, 1, 0), 0
@@ -483,7 +484,6 @@ class Beamformer:
         self.bulk_delay_samples = steering.bulk_delay_samples(
             geometry.max_steering_delay_s(self.sound_speed_mps), self.samplerate_hz)
         self._basis = _Basis(geometry)
-        self._kernel_rows = self._basis.kernel_rows()
         self._steer = self._build(beams)
         self.reset(0)
 
@@ -634,7 +634,7 @@ class Beamformer:
             self._buf[:, :n_fft] = self._buf[:, self._pos - n_fft:self._pos]
             self._pos = n_fft
         if self.compiled:
-            ia, ib, ca, cb = self._kernel_rows
+            ia, ib, ca, cb = self._basis.kernel_rows
             chunk = np.ascontiguousarray(chunk)
             _kernels.rows(chunk, b, chunk.shape[1], ia, ib, ca, cb, len(ia), self._buf, self._buf.shape[1], self._pos)
         else:
