@@ -48,7 +48,7 @@ def _pocketfft_rows():
 
         probe = np.random.default_rng(0).standard_normal((2, 10)).astype(np.float32)
         spec = pfft.r2c(probe, (1,), True, 0, None, 1)  # forward, no scaling, one worker
-        back = pfft.c2r(spec, (1,), 10, False, 2, None, 1)  # inverse, scaled by 1/n
+        back = pfft.c2r(spec.T, (0,), 10, False, 2, None, 1).T  # inverse down columns, scaled by 1/n
         if (spec.dtype == np.complex64 and np.allclose(spec, sfft.rfft(probe, axis=1), atol=1e-5)
                 and np.allclose(back, probe, atol=1e-5)):
             return pfft
@@ -67,11 +67,12 @@ def _rfft_rows(frame: np.ndarray) -> np.ndarray:
     return _PFFT.r2c(frame, (1,), True, 0, None, 1)
 
 
-def _irfft_rows(spec: np.ndarray, n: int) -> np.ndarray:
-    """Inverse of :func:`_rfft_rows` for rows of ``n`` samples."""
+def _irfft_columns(spec: np.ndarray, n: int) -> np.ndarray:
+    """Inverse real FFT of every column of ``spec`` (n // 2 + 1, columns) to (n, columns): frames
+    down the first axis, the layout of the audio output (no transposed copy afterwards)."""
     if _PFFT is None:
-        return sfft.irfft(spec, n=n, axis=1)
-    return _PFFT.c2r(spec, (1,), n, False, 2, None, 1)
+        return sfft.irfft(spec, n=n, axis=0)
+    return _PFFT.c2r(spec, (0,), n, False, 2, None, 1)
 
 
 #: True when the compiled inner loops are installed (see DEVELOPERS.md, "The compiled kernels").
@@ -673,8 +674,8 @@ class Beamformer:
 def _beam_audio(product: _BeamProduct, spec: np.ndarray, b: int, n_fft: int) -> np.ndarray:
     """The last ``b`` samples of the audio beams from one frame's channel spectra."""
     y, lag = product(spec[None])
-    frame = _irfft_rows(y[0], n_fft)  # (beams, n_fft)
-    return frame[:, n_fft - b - lag:n_fft - lag].T
+    frame = _irfft_columns(y[0].T, n_fft)  # (n_fft, beams)
+    return frame[n_fft - b - lag:n_fft - lag]
 
 
 def _empty_rows(n_bands: int, n_beams: int) -> tuple:
