@@ -65,6 +65,7 @@ class Publisher:
         self.sent = 0
         self.dropped = 0
         self._next_drop_log = 0.0
+        self._drop_lock = threading.Lock()  # drops are counted from both threads
         self._handover: queue.SimpleQueue = queue.SimpleQueue()
         self._thread = threading.Thread(target=self._send_loop, name="beamtap-publish", daemon=True)
         self._thread.start()
@@ -103,11 +104,14 @@ class Publisher:
 
     def _note_drop(self, topic: str, why: str) -> None:
         # Every drop is counted (status: messages_dropped); the log gets at most one line a second.
-        self.dropped += 1
-        now = time.monotonic()
-        if now >= self._next_drop_log:
-            log.warning("publish: %d message(s) dropped so far, latest %s (%s)", self.dropped, topic, why)
+        with self._drop_lock:
+            self.dropped += 1
+            now = time.monotonic()
+            if now < self._next_drop_log:
+                return
             self._next_drop_log = now + 1.0
+            dropped = self.dropped
+        log.warning("publish: %d message(s) dropped so far, latest %s (%s)", dropped, topic, why)
 
     def close(self) -> None:
         """Send what is queued, stop the sender thread and close the socket."""

@@ -198,6 +198,14 @@ static int need(Py_buffer *buf, Py_ssize_t items, Py_ssize_t item_size, const ch
     return 1;
 }
 
+/* Release the buffers a call acquired (those never acquired have obj == NULL). */
+static void release_all(Py_buffer *const *bufs, int n)
+{
+    for (int i = 0; i < n; i++)
+        if (bufs[i]->obj != NULL)
+            PyBuffer_Release(bufs[i]);
+}
+
 static PyObject *py_steer(PyObject *self, PyObject *args)
 {
     (void)self;
@@ -230,13 +238,8 @@ static PyObject *py_steer(PyObject *self, PyObject *args)
               k0, n_bins, n_rows, n_plain, n_beams, mo, mm, n_out, (float *)y.buf);
         Py_END_ALLOW_THREADS
     }
-    PyBuffer_Release(&h_re);
-    if (has_im && h_im.obj != NULL)
-        PyBuffer_Release(&h_im);
-    PyBuffer_Release(&v);
-    PyBuffer_Release(&main_out);
-    PyBuffer_Release(&mirror_out);
-    PyBuffer_Release(&y);
+    Py_buffer *const held[] = {&h_re, &h_im, &v, &main_out, &mirror_out, &y};
+    release_all(held, 6);
     if (!ok)
         return NULL;
     Py_RETURN_NONE;
@@ -269,12 +272,8 @@ static PyObject *py_rows(PyObject *self, PyObject *args)
              (float *)out.buf, out_cols, col);
         Py_END_ALLOW_THREADS
     }
-    PyBuffer_Release(&x);
-    PyBuffer_Release(&ia);
-    PyBuffer_Release(&ib);
-    PyBuffer_Release(&ca);
-    PyBuffer_Release(&cb);
-    PyBuffer_Release(&out);
+    Py_buffer *const held[] = {&x, &ia, &ib, &ca, &cb, &out};
+    release_all(held, 6);
     if (!ok)
         return NULL;
     Py_RETURN_NONE;
