@@ -36,12 +36,13 @@ static inline __attribute__((always_inline)) v8 load8(const float *p)
 #define MAX_BLOCKS 4
 
 /* Accumulate rows [r0, r1) of bin kk into one group of LANES beams, for nk
- * blocks of spectra (v + j * block_stride floats is block j). With one block,
+ * blocks of spectra (v + j * block_stride floats is block j, bins row_stride
+ * complex values apart). With one block,
  * even and odd rows go to separate accumulators so that two chains of adds
  * are in flight per output. ``turn`` multiplies the spectra by j. nk is a
  * constant at every call, so the loops over blocks unroll. */
 static inline __attribute__((always_inline)) void group_rows(
-    const float *h_re, const float *h_im, const float *v, Py_ssize_t v_bins, Py_ssize_t block_stride,
+    const float *h_re, const float *h_im, const float *v, Py_ssize_t row_stride, Py_ssize_t block_stride,
     Py_ssize_t kk, Py_ssize_t r0, Py_ssize_t r1, Py_ssize_t stride, int turn, const int nk, const int cplx,
     v8 *ar, v8 *ai)
 {
@@ -54,7 +55,7 @@ static inline __attribute__((always_inline)) void group_rows(
             if (cplx)
                 g = load8(h_im + (r + p) * stride);
             for (int j = 0; j < nk; j++) {
-                const float *s = v + j * block_stride + 2 * ((r + p) * v_bins + kk);
+                const float *s = v + j * block_stride + 2 * (kk * row_stride + r + p);
                 float sr = turn ? -s[1] : s[0], si = turn ? s[0] : s[1];
                 int a = p + j;
                 xr[a] += h * sr;
@@ -71,7 +72,7 @@ static inline __attribute__((always_inline)) void group_rows(
         if (cplx)
             g = load8(h_im + r * stride);
         for (int j = 0; j < nk; j++) {
-            const float *s = v + j * block_stride + 2 * (r * v_bins + kk);
+            const float *s = v + j * block_stride + 2 * (kk * row_stride + r);
             float sr = turn ? -s[1] : s[0], si = turn ? s[0] : s[1];
             xr[j] += h * sr;
             xi[j] += h * si;
@@ -89,14 +90,14 @@ static inline __attribute__((always_inline)) void group_rows(
 
 /* One bin, one group of beams, nk blocks: y[j, b0 + b, k] for b < nb. */
 static inline __attribute__((always_inline)) void bin_group(
-    const float *hr, const float *hi, const float *v, Py_ssize_t v_bins, Py_ssize_t block_stride, Py_ssize_t kk,
+    const float *hr, const float *hi, const float *v, Py_ssize_t block_stride, Py_ssize_t kk,
     Py_ssize_t n_rows, Py_ssize_t n_plain, Py_ssize_t stride, const int nk, const int cplx, float *y,
     const int *main_out, const int *mirror_out, Py_ssize_t n_out, Py_ssize_t n_bins, Py_ssize_t nb)
 {
     /* a: the plain rows' sum, then t: the turned rows' sum; beam = a + t, its mirror image a - t */
     v8 a_re[MAX_BLOCKS] = {{0}}, a_im[MAX_BLOCKS] = {{0}}, t_re[MAX_BLOCKS] = {{0}}, t_im[MAX_BLOCKS] = {{0}};
-    group_rows(hr, hi, v, v_bins, block_stride, kk, 0, n_plain, stride, 0, nk, cplx, a_re, a_im);
-    group_rows(hr, hi, v, v_bins, block_stride, kk, n_plain, n_rows, stride, 1, nk, cplx, t_re, t_im);
+    group_rows(hr, hi, v, n_rows, block_stride, kk, 0, n_plain, stride, 0, nk, cplx, a_re, a_im);
+    group_rows(hr, hi, v, n_rows, block_stride, kk, n_plain, n_rows, stride, 1, nk, cplx, t_re, t_im);
     for (int j = 0; j < nk; j++) {
         v8 p_re = a_re[j] + t_re[j], p_im = a_im[j] + t_im[j];
         v8 m_re = a_re[j] - t_re[j], m_im = a_im[j] - t_im[j];
@@ -116,7 +117,8 @@ static inline __attribute__((always_inline)) void bin_group(
 /* y[j, b, k] = sum_r h[k, r, b] v[j, r, k0 + k] over blocks j, beams b, bins k.
  * h_re, h_im: float32 (beam groups, bins, rows, LANES), the beams padded to
  * whole groups, h_im NULL for a real steering matrix; v: complex64 (blocks,
- * rows, v_bins) interleaved; rows r >= n_plain are multiplied by j first (the
+ * v_bins, rows) interleaved, the layout rfft_columns writes; rows r >= n_plain
+ * are multiplied by j first (the
  * difference rows of mirror pairs); y: complex64 (blocks, n_out, bins).
  * Beam b is written to output beam main_out[b]; where mirror_out[b] >= 0,
  * the sum with the turned rows' part negated goes to output beam
@@ -144,7 +146,7 @@ CLONES static void steer(const float *h_re, const float *h_im, const float *v, P
                 const float *hr = h_re + (b0 / LANES) * group_size + k * n_rows * LANES;
                 const float *hi = h_im == NULL ? NULL : h_im + (b0 / LANES) * group_size + k * n_rows * LANES;
                 float *yk = yj + 2 * k;
-#define BIN_GROUP(NK, CPLX) bin_group(hr, hi, vj, v_bins, block_stride, k0 + k, n_rows, n_plain, LANES, NK, CPLX, \
+#define BIN_GROUP(NK, CPLX) bin_group(hr, hi, vj, block_stride, k0 + k, n_rows, n_plain, LANES, NK, CPLX, \
                                      yk, main_out + b0, mirror_out + b0, n_out, n_bins, nb)
                 if (hi == NULL) {
                     switch (nk) {
@@ -167,24 +169,191 @@ CLONES static void steer(const float *h_re, const float *h_im, const float *v, P
     }
 }
 
-/* out[r, col + f] = ca[r] x[f, ia[r]] + cb[r] x[f, ib[r]]: history rows from
- * input frames x (frames, channels), float32; out is (n_rows, out_cols). Frames
- * go in tiles so that a tile of x stays in the first-level cache while every
- * row reads it. */
-#define FRAME_TILE 64
+/* out[col + f, r] = ca[r] x[f, ia[r]] + cb[r] x[f, ib[r]]: history rows from
+ * input frames x (frames, channels), float32; out is (out_frames, n_rows), one
+ * history row per column, so both sides of a frame are contiguous. */
 CLONES static void rows(const float *x, Py_ssize_t frames, Py_ssize_t channels, const int *ia, const int *ib,
-                        const float *ca, const float *cb, Py_ssize_t n_rows, float *out, Py_ssize_t out_cols,
-                        Py_ssize_t col)
+                        const float *ca, const float *cb, Py_ssize_t n_rows, float *out, Py_ssize_t col)
 {
-    for (Py_ssize_t f0 = 0; f0 < frames; f0 += FRAME_TILE) {
-        Py_ssize_t nf = frames - f0 < FRAME_TILE ? frames - f0 : FRAME_TILE;
-        for (Py_ssize_t r = 0; r < n_rows; r++) {
-            const float *xa = x + f0 * channels + ia[r];
-            const float *xb = x + f0 * channels + ib[r];
-            float a = ca[r], c = cb[r];
-            float *o = out + r * out_cols + col + f0;
-            for (Py_ssize_t f = 0; f < nf; f++)
-                o[f] = a * xa[f * channels] + c * xb[f * channels];
+    for (Py_ssize_t f = 0; f < frames; f++) {
+        const float *xf = x + f * channels;
+        float *o = out + (col + f) * n_rows;
+        for (Py_ssize_t r = 0; r < n_rows; r++)
+            o[r] = ca[r] * xf[ia[r]] + cb[r] * xf[ib[r]];
+    }
+}
+
+/* ---- Real FFT down the columns of a frame --------------------------------
+ *
+ * The frame is (n, columns) float32, a window of the history (frames down,
+ * one column per history row), so FL neighbouring columns sit side by side in
+ * memory: each vector lane carries one column through the whole transform,
+ * and the loops below read like a scalar FFT over vectors. The real
+ * transform of length n = 2M is a complex one of length M on z[m] = x[2m] +
+ * j x[2m+1], split afterwards (Oppenheim and Schafer 2010, §9.5 problem on
+ * two real sequences; the usual "real FFT by half-length complex FFT").
+ * The complex transform is a self-sorting (Stockham) decimation in
+ * frequency over radices 4, 2, 3 and 5 (Van Loan 1992, Computational
+ * Frameworks for the FFT, §1.7). Twiddles come precomputed from the caller. */
+#define FL 8
+typedef float vf __attribute__((vector_size(4 * FL)));
+typedef float vfu __attribute__((vector_size(4 * FL), aligned(4))); /* the same, any alignment */
+typedef int vi __attribute__((vector_size(4 * FL)));
+
+static inline __attribute__((always_inline)) vf ld(const float *p) { return *(const vfu *)p; }
+static inline __attribute__((always_inline)) void st(float *p, vf v) { *(vfu *)p = v; }
+
+/* (ar + j ai)(wr + j wi), w a scalar twiddle */
+#define CMUL_RE(ar, ai, wr, wi) ((ar) * (wr) - (ai) * (wi))
+#define CMUL_IM(ar, ai, wr, wi) ((ar) * (wi) + (ai) * (wr))
+
+/* One stage: length L = p * m, stride s (in vectors). Reads x planes, writes y planes.
+ * y[t + s (p q + k)] = W_L^{q k} * sum_r x[t + s (q + r m)] w_p^{r k}. */
+static inline __attribute__((always_inline)) void stage(const float *xr, const float *xi, float *yr, float *yi,
+                                                         Py_ssize_t m, Py_ssize_t s, int p, const float *tw)
+{
+    for (Py_ssize_t q = 0; q < m; q++) {
+        const float *w = tw + 2 * (p - 1) * q;
+        for (Py_ssize_t t = 0; t < s; t++) {
+#define X(r) (FL * (t + s * (q + (r) * m)))
+#define Y(k) (FL * (t + s * (p * q + (k))))
+#define OUT(k, br, bi)                                                             \
+    do {                                                                           \
+        if ((k) == 0) {                                                            \
+            st(yr + Y(0), br);                                                     \
+            st(yi + Y(0), bi);                                                     \
+        } else {                                                                   \
+            float wr_ = w[2 * ((k) - 1)], wi_ = w[2 * ((k) - 1) + 1];              \
+            st(yr + Y(k), CMUL_RE(br, bi, wr_, wi_));                              \
+            st(yi + Y(k), CMUL_IM(br, bi, wr_, wi_));                              \
+        }                                                                          \
+    } while (0)
+            if (p == 4) {
+                vf a0r = ld(xr + X(0)), a0i = ld(xi + X(0)), a1r = ld(xr + X(1)), a1i = ld(xi + X(1));
+                vf a2r = ld(xr + X(2)), a2i = ld(xi + X(2)), a3r = ld(xr + X(3)), a3i = ld(xi + X(3));
+                vf t0r = a0r + a2r, t0i = a0i + a2i, t1r = a0r - a2r, t1i = a0i - a2i;
+                vf t2r = a1r + a3r, t2i = a1i + a3i;
+                vf t3r = a1i - a3i, t3i = a3r - a1r; /* (a1 - a3) * (-j) */
+                OUT(0, t0r + t2r, t0i + t2i);
+                OUT(1, t1r + t3r, t1i + t3i);
+                OUT(2, t0r - t2r, t0i - t2i);
+                OUT(3, t1r - t3r, t1i - t3i);
+            } else if (p == 2) {
+                vf a0r = ld(xr + X(0)), a0i = ld(xi + X(0)), a1r = ld(xr + X(1)), a1i = ld(xi + X(1));
+                OUT(0, a0r + a1r, a0i + a1i);
+                OUT(1, a0r - a1r, a0i - a1i);
+            } else if (p == 3) {
+                const float c = -0.5f, sn = 0.86602540378443864676f;
+                vf a0r = ld(xr + X(0)), a0i = ld(xi + X(0)), a1r = ld(xr + X(1)), a1i = ld(xi + X(1));
+                vf a2r = ld(xr + X(2)), a2i = ld(xi + X(2));
+                vf tr = a1r + a2r, ti = a1i + a2i, dr = a1r - a2r, di = a1i - a2i;
+                vf mr = a0r + c * tr, mi = a0i + c * ti;
+                /* -j sn (a1 - a2) */
+                vf nr = sn * di, ni = -sn * dr;
+                OUT(0, a0r + tr, a0i + ti);
+                OUT(1, mr + nr, mi + ni);
+                OUT(2, mr - nr, mi - ni);
+            } else { /* p == 5 */
+                const float c1 = 0.30901699437494742410f, c2 = -0.80901699437494742410f;
+                const float s1 = 0.95105651629515357212f, s2 = 0.58778525229247312917f;
+                vf a0r = ld(xr + X(0)), a0i = ld(xi + X(0)), a1r = ld(xr + X(1)), a1i = ld(xi + X(1));
+                vf a2r = ld(xr + X(2)), a2i = ld(xi + X(2)), a3r = ld(xr + X(3)), a3i = ld(xi + X(3));
+                vf a4r = ld(xr + X(4)), a4i = ld(xi + X(4));
+                vf t1r = a1r + a4r, t1i = a1i + a4i, t2r = a2r + a3r, t2i = a2i + a3i;
+                vf t3r = a1r - a4r, t3i = a1i - a4i, t4r = a2r - a3r, t4i = a2i - a3i;
+                vf m1r = a0r + c1 * t1r + c2 * t2r, m1i = a0i + c1 * t1i + c2 * t2i;
+                vf m2r = a0r + c2 * t1r + c1 * t2r, m2i = a0i + c2 * t1i + c1 * t2i;
+                /* n1 = -j (s1 t3 + s2 t4), n2 = -j (s2 t3 - s1 t4) */
+                vf u1r = s1 * t3r + s2 * t4r, u1i = s1 * t3i + s2 * t4i;
+                vf u2r = s2 * t3r - s1 * t4r, u2i = s2 * t3i - s1 * t4i;
+                OUT(0, a0r + t1r + t2r, a0i + t1i + t2i);
+                OUT(1, m1r + u1i, m1i - u1r);
+                OUT(4, m1r - u1i, m1i + u1r);
+                OUT(2, m2r + u2i, m2i - u2r);
+                OUT(3, m2r - u2i, m2i + u2r);
+            }
+#undef X
+#undef Y
+#undef OUT
+        }
+    }
+}
+
+/* out[k, col] = sum_f x[f, col] exp(-2 pi j k f / n), k = 0 .. n/2, for columns
+ * [0, n_cols); x rows are x_stride floats apart. factors: the radices of M = n/2
+ * in stage order; tw: complex64 twiddles, each stage's (m, p - 1) table W_L^{qk}
+ * (L the stage length, q < m = L/p, k = 1 .. p-1) in stage order, then
+ * exp(-2 pi j k / n) for k = 0 .. M; scratch: 4 M FL floats. */
+CLONES static void rfft_columns(const float *x, Py_ssize_t x_stride, Py_ssize_t n_cols, Py_ssize_t n,
+                                const int *factors, int n_factors, const float *tw, float *scratch, float *out)
+{
+    Py_ssize_t M = n / 2;
+    float *pr = scratch, *pi = scratch + M * FL, *qr = scratch + 2 * M * FL, *qi = scratch + 3 * M * FL;
+    const float *post = tw;
+    for (int f = 0; f < n_factors; f++) {
+        Py_ssize_t L = M;
+        for (int g = 0; g < f; g++)
+            L /= factors[g];
+        post += 2 * (factors[f] - 1) * (L / factors[f]);
+    }
+    for (Py_ssize_t c0 = 0; c0 < n_cols; c0 += FL) {
+        Py_ssize_t nc = n_cols - c0 < FL ? n_cols - c0 : FL;
+        /* z[m] = x[2m] + j x[2m+1] for this group of columns */
+        for (Py_ssize_t m = 0; m < M; m++) {
+            const float *e = x + (2 * m) * x_stride + c0, *o = e + x_stride;
+            if (nc == FL) {
+                st(pr + m * FL, ld(e));
+                st(pi + m * FL, ld(o));
+            } else {
+                for (Py_ssize_t l = 0; l < FL; l++) {
+                    pr[m * FL + l] = l < nc ? e[l] : 0.0f;
+                    pi[m * FL + l] = l < nc ? o[l] : 0.0f;
+                }
+            }
+        }
+        /* the complex transform, ping-ponging between the p and q planes */
+        float *ar = pr, *ai = pi, *br = qr, *bi = qi;
+        const float *w = tw;
+        Py_ssize_t L = M, s = 1;
+        for (int f = 0; f < n_factors; f++) {
+            int p = factors[f];
+            Py_ssize_t m = L / p;
+            switch (p) {
+            case 4: stage(ar, ai, br, bi, m, s, 4, w); break;
+            case 2: stage(ar, ai, br, bi, m, s, 2, w); break;
+            case 3: stage(ar, ai, br, bi, m, s, 3, w); break;
+            default: stage(ar, ai, br, bi, m, s, 5, w); break;
+            }
+            w += 2 * (p - 1) * m;
+            L = m;
+            s *= p;
+            float *tr = ar, *ti = ai;
+            ar = br, ai = bi, br = tr, bi = ti;
+        }
+        /* split: X[k] = (Z[k] + conj Z[M-k]) / 2 - j W^k (Z[k] - conj Z[M-k]) / 2 */
+        for (Py_ssize_t k = 0; k <= M; k++) {
+            Py_ssize_t k1 = k == M ? 0 : k, k2 = k == 0 ? 0 : M - k;
+            vf zr = ld(ar + k1 * FL), zi = ld(ai + k1 * FL), cr = ld(ar + k2 * FL), ci = -ld(ai + k2 * FL);
+            vf er = 0.5f * (zr + cr), ei = 0.5f * (zi + ci);
+            vf dr = 0.5f * (zr - cr), di = 0.5f * (zi - ci);
+            /* o = -j d */
+            vf orr = di, oi = -dr;
+            float wr = post[2 * k], wi = post[2 * k + 1];
+            vf xr_ = er + CMUL_RE(orr, oi, wr, wi), xi_ = ei + CMUL_IM(orr, oi, wr, wi);
+            float *o = out + 2 * (k * n_cols + c0);
+            if (nc == FL) {
+                vf lo = __builtin_shuffle(xr_, xi_, (vi){
+                    0, 8, 1, 9, 2, 10, 3, 11});
+                vf hi = __builtin_shuffle(xr_, xi_, (vi){
+                    4, 12, 5, 13, 6, 14, 7, 15});
+                st(o, lo);
+                st(o + FL, hi);
+            } else {
+                for (Py_ssize_t l = 0; l < nc; l++) {
+                    o[2 * l] = xr_[l];
+                    o[2 * l + 1] = xi_[l];
+                }
+            }
         }
     }
 }
@@ -249,15 +418,14 @@ static PyObject *py_rows(PyObject *self, PyObject *args)
 {
     (void)self;
     Py_buffer x, ia, ib, ca, cb, out;
-    Py_ssize_t frames, channels, n_rows, out_cols, col;
+    Py_ssize_t frames, channels, n_rows, out_frames, col;
     if (!PyArg_ParseTuple(args, "y*nny*y*y*y*nw*nn", &x, &frames, &channels, &ia, &ib, &ca, &cb, &n_rows, &out,
-                          &out_cols, &col))
+                          &out_frames, &col))
         return NULL;
     int ok = need(&x, frames * channels, 4, "x") && need(&ia, n_rows, 4, "ia") && need(&ib, n_rows, 4, "ib")
-             && need(&ca, n_rows, 4, "ca") && need(&cb, n_rows, 4, "cb")
-             && need(&out, (n_rows - 1) * out_cols + col + frames, 4, "out");
-    if (ok && (col < 0 || col + frames > out_cols)) {
-        PyErr_SetString(PyExc_ValueError, "rows: columns outside the history");
+             && need(&ca, n_rows, 4, "ca") && need(&cb, n_rows, 4, "cb") && need(&out, out_frames * n_rows, 4, "out");
+    if (ok && (frames < 0 || col < 0 || col + frames > out_frames)) {
+        PyErr_SetString(PyExc_ValueError, "rows: frames outside the history");
         ok = 0;
     }
     const int *a = (const int *)ia.buf, *b = (const int *)ib.buf;
@@ -269,11 +437,48 @@ static PyObject *py_rows(PyObject *self, PyObject *args)
     if (ok) {
         Py_BEGIN_ALLOW_THREADS
         rows((const float *)x.buf, frames, channels, a, b, (const float *)ca.buf, (const float *)cb.buf, n_rows,
-             (float *)out.buf, out_cols, col);
+             (float *)out.buf, col);
         Py_END_ALLOW_THREADS
     }
     Py_buffer *const held[] = {&x, &ia, &ib, &ca, &cb, &out};
     release_all(held, 6);
+    if (!ok)
+        return NULL;
+    Py_RETURN_NONE;
+}
+
+static PyObject *py_rfft(PyObject *self, PyObject *args)
+{
+    (void)self;
+    Py_buffer x, factors, tw, scratch, out;
+    Py_ssize_t x_stride, n_cols, n;
+    if (!PyArg_ParseTuple(args, "y*nnny*y*w*w*", &x, &x_stride, &n_cols, &n, &factors, &tw, &scratch, &out))
+        return NULL;
+    Py_ssize_t M = n / 2, n_factors = factors.len / (Py_ssize_t)sizeof(int), twiddles = M + 1, product = 1;
+    const int *fa = (const int *)factors.buf;
+    int ok = 1;
+    for (Py_ssize_t f = 0; f < n_factors; f++) {
+        if (fa[f] < 2 || fa[f] > 5 || product * fa[f] > M) {
+            ok = 0;
+            break;
+        }
+        product *= fa[f];
+        twiddles += (fa[f] - 1) * (M / product);
+    }
+    if (!ok || n < 2 || n % 2 || product != M || n_cols < 0 || n_cols > x_stride) {
+        PyErr_SetString(PyExc_ValueError, "rfft: length, radices or columns do not fit");
+        ok = 0;
+    }
+    ok = ok && need(&x, (n - 1) * x_stride + n_cols, 4, "x") && need(&tw, twiddles, 8, "tw")
+         && need(&scratch, 4 * M * FL, 4, "scratch") && need(&out, (M + 1) * n_cols, 8, "out");
+    if (ok) {
+        Py_BEGIN_ALLOW_THREADS
+        rfft_columns((const float *)x.buf, x_stride, n_cols, n, fa, (int)n_factors, (const float *)tw.buf,
+                     (float *)scratch.buf, (float *)out.buf);
+        Py_END_ALLOW_THREADS
+    }
+    Py_buffer *const held[] = {&x, &factors, &tw, &scratch, &out};
+    release_all(held, 5);
     if (!ok)
         return NULL;
     Py_RETURN_NONE;
@@ -284,7 +489,9 @@ static PyMethodDef methods[] = {
      "steer(h_re, h_im, v, n_blocks, v_bins, k0, n_bins, n_rows, n_plain, n_beams, main_out, mirror_out, n_out, y): "
      "per-bin steered sums."},
     {"rows", py_rows, METH_VARARGS,
-     "rows(x, frames, channels, ia, ib, ca, cb, n_rows, out, out_cols, col): history rows from input frames."},
+     "rows(x, frames, channels, ia, ib, ca, cb, n_rows, out, out_frames, col): history rows from input frames."},
+    {"rfft", py_rfft, METH_VARARGS,
+     "rfft(x, x_stride, n_cols, n, factors, tw, scratch, out): real FFT down the columns of a frame."},
     {NULL, NULL, 0, NULL},
 };
 

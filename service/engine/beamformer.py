@@ -27,9 +27,8 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-import scipy.fft as sfft
-
 from . import bandpower, shading, steering
+from .transform import ColumnFFT, fast_length, irfft_columns
 from .directions import unit_vectors
 from .geometry import ArrayGeometry
 
@@ -37,42 +36,6 @@ try:  # the compiled inner loops (service/engine/_kernels.c); numpy forms the sa
     from . import _kernels
 except ImportError:  # pragma: no cover - exercised by installs without a C compiler
     _kernels = None
-
-
-def _pocketfft_rows():
-    """scipy's pocketfft binding, called directly: the public ``scipy.fft`` wrappers cost about
-    10 µs per call in dispatch here, a tenth of the 16-sensor block. Private API, so it is
-    used only after a check that it gives the public functions' results; else None."""
-    try:
-        from scipy.fft._pocketfft import pypocketfft as pfft
-
-        probe = np.random.default_rng(0).standard_normal((2, 10)).astype(np.float32)
-        spec = pfft.r2c(probe, (1,), True, 0, None, 1)  # forward, no scaling, one worker
-        back = pfft.c2r(spec.T, (0,), 10, False, 2, None, 1).T  # inverse down columns, scaled by 1/n
-        if (spec.dtype == np.complex64 and np.allclose(spec, sfft.rfft(probe, axis=1), atol=1e-5)
-                and np.allclose(back, probe, atol=1e-5)):
-            return pfft
-    except Exception:  # noqa: BLE001 - any change of the private binding means: use the public one
-        pass
-    return None
-
-
-_PFFT = _pocketfft_rows()
-
-
-def _rfft_rows(frame: np.ndarray) -> np.ndarray:
-    """Real FFT of every row of ``frame`` (rows, n), float32 in, complex64 out."""
-    if _PFFT is None:
-        return sfft.rfft(frame, axis=1)
-    return _PFFT.r2c(frame, (1,), True, 0, None, 1)
-
-
-def _irfft_columns(spec: np.ndarray, n: int) -> np.ndarray:
-    """Inverse real FFT of every column of ``spec`` (n // 2 + 1, columns) to (n, columns): frames
-    down the first axis, the layout of the audio output (no transposed copy afterwards)."""
-    if _PFFT is None:
-        return sfft.irfft(spec, n=n, axis=0)
-    return _PFFT.c2r(spec, (0,), n, False, 2, None, 1)
 
 
 #: True when the compiled inner loops are installed (see DEVELOPERS.md, "The compiled kernels").
@@ -201,17 +164,16 @@ class _Basis:
                                        np.concatenate([half, -np.ones(int(two.sum()))]))
 
     def write(self, out: np.ndarray, chunk: np.ndarray) -> None:
-        """Rows (n_rows, frames) of ``out`` from input frames ``chunk`` (frames, channels)."""
-        sensors = chunk if self._cols is None else chunk[:, self._cols]
+        """History ``out`` (frames, n_rows), one row per column, from input frames ``chunk`` (frames, channels)."""
+        x = chunk if self._cols is None else chunk[:, self._cols]
         if self.pairs is None:
-            out[:] = sensors.T
+            out[:] = x
             return
-        x = np.ascontiguousarray(sensors.T)  # (sensors, frames)
-        sums = out[:self.n_sums]
-        np.add(x[self._sa], x[self._sb], out=sums)
+        sums = out[:, :self.n_sums]
+        np.add(x[:, self._sa], x[:, self._sb], out=sums)
         if len(self._centre):
-            sums[self._centre] *= 0.5
-        np.subtract(x[self._da], x[self._db], out=out[self.n_sums:])
+            sums[:, self._centre] *= 0.5
+        np.subtract(x[:, self._da], x[:, self._db], out=out[:, self.n_sums:])
 
     def transform(self, h: np.ndarray) -> np.ndarray:
         """Steering (..., sensors) on sensor signals -> the same sum on the rows."""
@@ -235,6 +197,7 @@ class _Steering:
     def __init__(self, geometry, basis: _Basis, sound_speed_mps, samplerate_hz, bulk_delay, n_fft, valid,
                  beams: BeamSet, compiled: bool):
         self.beams = beams
+        self.fft = ColumnFFT(n_fft, compiled)
         pos = geometry.centred_positions_m
         gain = geometry.active_gain
         trims = geometry.active_trim_s
@@ -309,7 +272,7 @@ class _BeamProduct:
                       for part in ((q,) if symmetric else (q.real, q.imag))]
             self.h = [np.ascontiguousarray(part, dtype=np.float32) for part in planes]
         elif n_beams * n_sensors <= _ELEMENTWISE_MAX and not symmetric:
-            self.h, self.elementwise = [np.ascontiguousarray(q.transpose(1, 2, 0))], True
+            self.h, self.elementwise = [np.ascontiguousarray(q)], True
         else:
             self.h = [np.ascontiguousarray(q, dtype=np.float32 if symmetric else np.complex64)]
 
@@ -319,20 +282,20 @@ class _BeamProduct:
 
     def __call__(self, spec: np.ndarray, offset: int = 0) -> tuple:
         """Steered spectra (blocks, beams, bins) and their lag from row spectra
-        ``spec`` (blocks, rows, n), complex64, C order, whose ``spec[..., i]``
+        ``spec`` (blocks, n, rows), complex64, C order, whose ``spec[:, i]``
         is bin ``offset + i``."""
         k0 = self.first_bin - offset
-        n_blocks, n_rows, width = spec.shape
+        n_blocks, width, n_rows = spec.shape
         if self.compiled:
             y = np.empty((n_blocks, self.n_beams, self.n_bins), np.complex64)
             _kernels.steer(self.h[0], self.h[1] if len(self.h) > 1 else None, spec, n_blocks, width, k0,
                            self.n_bins, n_rows, self.n_plain, len(self.main_out), self.main_out, self.mirror_out,
                            self.n_beams, y)
             return y, self.lag
-        band = spec[:, :, k0:k0 + self.n_bins]
-        if self.elementwise:  # h: (beams, rows, bins)
-            return (self.h[0][None] * band[:, None]).sum(axis=2), 0
-        v = band.transpose(2, 1, 0).copy()  # (bins, rows, blocks), a copy: turned in place below
+        band = spec[:, k0:k0 + self.n_bins]
+        if self.elementwise:  # h: (bins, beams, rows)
+            return (self.h[0][None] * band[:, :, None, :]).sum(axis=3).transpose(0, 2, 1), 0
+        v = band.transpose(1, 2, 0).copy()  # (bins, rows, blocks), a copy: turned in place below
         if not self.real_form:
             return np.matmul(self.h[0], v).transpose(2, 1, 0), 0
         v[:, self.n_plain:] *= np.complex64(1j)
@@ -492,7 +455,7 @@ class Beamformer:
     def _fft_size_for(self, beams: BeamSet) -> int:
         need = (self.block_frames + steering.filter_span_samples(self.bulk_delay_samples)
                 + max_band_filter_taps(beams, self.samplerate_hz) - 2)
-        return int(sfft.next_fast_len(need, real=True))
+        return fast_length(need)
 
     def prepare(self, beams: BeamSet) -> _Steering:
         """Build steering data for a new beam set (may run on another thread)."""
@@ -518,7 +481,7 @@ class Beamformer:
                             and len(old.beams.audio_deg) == len(new.beams.audio_deg) and old_n == new_n)
         self._fade_from = (old.audio, self._sample) if same_audio_count else None
         self._steer = prepared
-        if new_n > self._buf.shape[1] - self.block_frames:
+        if new_n > self._buf.shape[0] - self.block_frames:
             self._grow_history(new_n)
         return released
 
@@ -533,7 +496,8 @@ class Beamformer:
         Pending power blocks are dropped; call :meth:`flush` first to keep them.
         """
         n_fft = self._steer[1]
-        self._buf = np.zeros((self._basis.n_rows, self._history_frames(n_fft)), np.float32)
+        # One history row per column: a frame is a contiguous (n_fft, rows) slice.
+        self._buf = np.zeros((self._history_frames(n_fft), self._basis.n_rows), np.float32)
         self._pos = n_fft
         self._sample = int(first_sample)
         self._power_origin = int(first_sample)
@@ -547,10 +511,10 @@ class Beamformer:
         return n_fft + max(4 * self.block_frames, 4 * n_fft)
 
     def _grow_history(self, n_fft: int) -> None:
-        keep = self._buf[:, : self._pos]
-        buf = np.zeros((self._basis.n_rows, self._history_frames(n_fft)), np.float32)
-        take = min(keep.shape[1], n_fft)
-        buf[:, n_fft - take: n_fft] = keep[:, keep.shape[1] - take:]
+        keep = self._buf[: self._pos]
+        buf = np.zeros((self._history_frames(n_fft), self._basis.n_rows), np.float32)
+        take = min(len(keep), n_fft)
+        buf[n_fft - take: n_fft] = keep[len(keep) - take:]
         self._buf, self._pos = buf, n_fft
 
     # ---- properties ---------------------------------------------------
@@ -610,14 +574,14 @@ class Beamformer:
             to_boundary = self.block_frames - (self._sample - self._power_origin) % self.block_frames
             b = min(frames - pos, to_boundary)
             frame = self._push(x[pos:pos + b], n_fft)
-            spec = _rfft_rows(frame)  # (rows, n_fft//2+1), one FFT serves both paths
+            spec = steer.fft(frame)  # (n_fft//2+1, rows), one FFT serves both paths
             if n_audio:
                 audio[pos:pos + b] = self._audio(spec, b, n_fft)
             self._sample += b
             pos += b
             if b == to_boundary:
                 self._pending_start.append(self._sample - self.block_frames)
-                self._pending_spec.append(spec[:, steer.k1:steer.k2 + 1])  # a view: spec is new every frame
+                self._pending_spec.append(spec[steer.k1:steer.k2 + 1])  # a view: spec is new every frame
                 if len(self._pending_start) >= self.power_batch_blocks:
                     released.append(self._release_power())
         rows = _concat_results(released, len(steer.bands), len(steer.beams.power_deg))
@@ -631,17 +595,17 @@ class Beamformer:
 
     def _push(self, chunk: np.ndarray, n_fft: int) -> np.ndarray:
         b = len(chunk)
-        if self._pos + b > self._buf.shape[1]:
-            self._buf[:, :n_fft] = self._buf[:, self._pos - n_fft:self._pos]
+        if self._pos + b > self._buf.shape[0]:
+            self._buf[:n_fft] = self._buf[self._pos - n_fft:self._pos]
             self._pos = n_fft
         if self.compiled:
             ia, ib, ca, cb = self._basis.kernel_rows
             chunk = np.ascontiguousarray(chunk)
-            _kernels.rows(chunk, b, chunk.shape[1], ia, ib, ca, cb, len(ia), self._buf, self._buf.shape[1], self._pos)
+            _kernels.rows(chunk, b, chunk.shape[1], ia, ib, ca, cb, len(ia), self._buf, len(self._buf), self._pos)
         else:
-            self._basis.write(self._buf[:, self._pos:self._pos + b], chunk)
+            self._basis.write(self._buf[self._pos:self._pos + b], chunk)
         self._pos += b
-        return self._buf[:, self._pos - n_fft:self._pos]
+        return self._buf[self._pos - n_fft:self._pos]
 
     def _audio(self, spec: np.ndarray, b: int, n_fft: int) -> np.ndarray:
         steer = self._steer[0]
@@ -659,7 +623,7 @@ class Beamformer:
         steer = self._steer[0]
         if not self._pending_start:
             return _empty_rows(len(steer.bands), len(steer.beams.power_deg))
-        spec = np.stack(self._pending_spec)  # (K, rows, bins from k1)
+        spec = np.stack(self._pending_spec)  # (K, bins from k1, rows)
         starts = np.array(self._pending_start, np.int64)
         self._pending_start, self._pending_spec = [], []
         y, _ = steer.power(spec, offset=steer.k1)  # (K, beams, bins); the band factors hold the lag
@@ -674,7 +638,7 @@ class Beamformer:
 def _beam_audio(product: _BeamProduct, spec: np.ndarray, b: int, n_fft: int) -> np.ndarray:
     """The last ``b`` samples of the audio beams from one frame's channel spectra."""
     y, lag = product(spec[None])
-    frame = _irfft_columns(y[0].T, n_fft)  # (n_fft, beams)
+    frame = irfft_columns(y[0].T, n_fft)  # (n_fft, beams)
     return frame[n_fft - b - lag:n_fft - lag]
 
 

@@ -1,0 +1,120 @@
+"""Real FFTs of the overlap-save frames: forward down the columns of a frame, inverse down columns.
+
+The engine's history holds one column per history row (frames down), so a
+frame is ``(n, rows)`` and its spectrum ``(n // 2 + 1, rows)``: for every bin
+the rows sit side by side, the order in which the steered sums read them.
+The forward transform is the compiled one of ``_kernels.c`` when it is
+installed (each vector lane carries one column through a self-sorting
+mixed-radix FFT; faster here than pocketfft on the same frame, see
+bench/results.md); otherwise scipy's pocketfft.
+
+References
+----------
+C. Van Loan, Computational Frameworks for the Fast Fourier Transform (SIAM,
+1992), §1.7 (Stockham autosort frameworks), §4.1 (real data by a
+half-length complex transform).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.fft as sfft
+
+try:
+    from . import _kernels
+except ImportError:  # pragma: no cover - exercised by installs without a C compiler
+    _kernels = None
+
+#: Columns per vector of the compiled transform (FL in _kernels.c): its scratch holds this many.
+_KERNEL_COLUMNS = 8
+_RADICES = (4, 2, 3, 5)
+
+
+def _pocketfft():
+    """scipy's pocketfft binding, called directly: the public ``scipy.fft`` wrappers cost about
+    10 µs per call in dispatch here, a tenth of the 16-sensor block. Private API, so it is
+    used only after a check that it gives the public functions' results; else None."""
+    try:
+        from scipy.fft._pocketfft import pypocketfft as pfft
+
+        probe = np.random.default_rng(0).standard_normal((10, 2)).astype(np.float32)
+        spec = pfft.r2c(probe, (0,), True, 0, None, 1)  # forward down columns, no scaling, one worker
+        back = pfft.c2r(spec, (0,), 10, False, 2, None, 1)  # inverse down columns, scaled by 1/n
+        if (spec.dtype == np.complex64 and np.allclose(spec, sfft.rfft(probe, axis=0), atol=1e-5)
+                and np.allclose(back, probe, atol=1e-5)):
+            return pfft
+    except Exception:  # noqa: BLE001 - any change of the private binding means: use the public one
+        pass
+    return None
+
+
+_PFFT = _pocketfft()
+
+
+def fast_length(need: int) -> int:
+    """Smallest even length ``>= need`` whose half has no prime factor above 5 (both transforms
+    are fast there, and the compiled one needs it)."""
+    return 2 * int(sfft.next_fast_len(max(1, -(-int(need) // 2)), real=True))
+
+
+def _radices(m: int):
+    """Radices 4, 2, 3, 5 whose product is ``m``, or None."""
+    out = []
+    for p in _RADICES:
+        while m % p == 0:
+            out.append(p)
+            m //= p
+    return out if m == 1 else None
+
+
+class ColumnFFT:
+    """Forward real FFT down the columns of ``(n, columns)`` float32 frames, one length.
+
+    Parameters
+    ----------
+    n : int
+        Frame length (samples).
+    compiled : bool
+        Use the compiled transform (needs the kernels, an even ``n`` and
+        ``n // 2`` with no prime factor above 5; else pocketfft).
+
+    Notes
+    -----
+    Real-time constraint: the twiddles and scratch are made here, once;
+    a call allocates only its output.
+    """
+
+    def __init__(self, n: int, compiled: bool):
+        self.n = int(n)
+        radices = _radices(self.n // 2) if self.n % 2 == 0 else None
+        self.compiled = bool(compiled) and _kernels is not None and radices is not None
+        if not self.compiled:
+            return
+        m, twiddles, length = self.n // 2, [], self.n // 2
+        for p in radices:  # each stage's table W_L^(q k), q < L / p, k = 1 .. p - 1
+            q, k = np.arange(length // p)[:, None], np.arange(1, p)[None, :]
+            twiddles.append(np.exp(-2j * np.pi * q * k / length).ravel())
+            length //= p
+        twiddles.append(np.exp(-2j * np.pi * np.arange(m + 1) / self.n))  # the real split's W_n^k
+        self._radices = np.array(radices, np.int32)
+        self._twiddles = np.concatenate(twiddles).astype(np.complex64)
+        self._scratch = np.empty(4 * m * _KERNEL_COLUMNS, np.float32)
+
+    def __call__(self, frame: np.ndarray) -> np.ndarray:
+        """Spectrum ``(n // 2 + 1, columns)`` complex64 of ``frame`` ``(n, columns)`` float32, C order."""
+        if self.compiled:
+            out = np.empty((self.n // 2 + 1, frame.shape[1]), np.complex64)
+            _kernels.rfft(frame, frame.shape[1], frame.shape[1], self.n, self._radices, self._twiddles,
+                          self._scratch, out)
+            return out
+        if _PFFT is None:
+            return sfft.rfft(frame, axis=0)
+        return _PFFT.r2c(frame, (0,), True, 0, None, 1)
+
+
+def irfft_columns(spec: np.ndarray, n: int) -> np.ndarray:
+    """Inverse real FFT of every column of ``spec`` (n // 2 + 1, columns) to (n, columns): frames
+    down the first axis, the layout of the audio output (no transposed copy afterwards)."""
+    if _PFFT is None:
+        return sfft.irfft(spec, n=n, axis=0)
+    return _PFFT.c2r(spec, (0,), n, False, 2, None, 1)
