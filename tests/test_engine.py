@@ -394,7 +394,7 @@ def test_compiled_kernels_refuse_bad_buffers():
 def test_column_fft_equals_numpy(rng, n, columns):
     """The engine's real FFT down columns (compiled when installed, else pocketfft) against
     numpy.fft.rfft in float64 (a general-purpose reference library). A float32 FFT's error
-    grows like eps * log2(n) (Van Loan 1992, §1.4); 2e-6 of the spectrum's peak is about
+    grows like eps * log2(n) (Van Loan 1992, roundoff of the FFT; from memory); 2e-6 of the spectrum's peak is about
     twenty times the float32 epsilon, a margin that still catches any wrong twiddle or index."""
     frame = rng.standard_normal((n, columns)).astype(np.float32)
     fft = ColumnFFT(n, compiled=COMPILED_AVAILABLE)

@@ -1,10 +1,11 @@
-/* Two inner loops of the beamformer, compiled (see DEVELOPERS.md, "The compiled kernels").
+/* Three inner loops of the beamformer, compiled (see DEVELOPERS.md, "The compiled kernels").
  *
- * numpy forms the same sums in beamformer.py; these loops exist because there
- * the per-bin products are thousands of tiny matrix products (one BLAS call
- * each, mostly call overhead) and the history write is a transpose plus a
- * pass per operation. Both loops work on the arrays in the layout the engine
- * already has, so nothing is transposed or copied on the way in or out.
+ * numpy and pocketfft do the same work in beamformer.py and transform.py;
+ * these loops exist because there the per-bin products are thousands of tiny
+ * matrix products (one BLAS call each, mostly call overhead), the history
+ * write is a pass per operation, and the FFT is built for any machine. All
+ * three work on the arrays in the layout the engine already has, so nothing
+ * is transposed or copied on the way in or out.
  *
  * Only the CPython buffer protocol is used (no numpy headers): the Python side
  * passes C-contiguous float32 / complex64 / int32 arrays and their shapes, and
@@ -190,11 +191,11 @@ CLONES static void rows(const float *x, Py_ssize_t frames, Py_ssize_t channels, 
  * memory: each vector lane carries one column through the whole transform,
  * and the loops below read like a scalar FFT over vectors. The real
  * transform of length n = 2M is a complex one of length M on z[m] = x[2m] +
- * j x[2m+1], split afterwards (Oppenheim and Schafer 2010, §9.5 problem on
- * two real sequences; the usual "real FFT by half-length complex FFT").
- * The complex transform is a self-sorting (Stockham) decimation in
+ * j x[2m+1], split afterwards (the usual real FFT by a half-length complex
+ * one). The complex transform is a self-sorting (Stockham) decimation in
  * frequency over radices 4, 2, 3 and 5 (Van Loan 1992, Computational
- * Frameworks for the FFT, §1.7). Twiddles come precomputed from the caller. */
+ * Frameworks for the FFT; section numbers in transform.py are from memory).
+ * Twiddles come precomputed from the caller. */
 #define FL 8
 typedef float vf __attribute__((vector_size(4 * FL)));
 typedef float vfu __attribute__((vector_size(4 * FL), aligned(4))); /* the same, any alignment */

@@ -11,8 +11,8 @@ bench/results.md); otherwise scipy's pocketfft.
 References
 ----------
 C. Van Loan, Computational Frameworks for the Fast Fourier Transform (SIAM,
-1992), §1.7 (Stockham autosort frameworks), §4.1 (real data by a
-half-length complex transform).
+1992): the Stockham autosort frameworks (§1.7) and real data by a
+half-length complex transform (ch. 4); section numbers from memory.
 """
 
 from __future__ import annotations
