@@ -290,13 +290,6 @@ CLONES static void rfft_columns(const float *x, Py_ssize_t x_stride, Py_ssize_t 
 {
     Py_ssize_t M = n / 2;
     float *pr = scratch, *pi = scratch + M * FL, *qr = scratch + 2 * M * FL, *qi = scratch + 3 * M * FL;
-    const float *post = tw;
-    for (int f = 0; f < n_factors; f++) {
-        Py_ssize_t L = M;
-        for (int g = 0; g < f; g++)
-            L /= factors[g];
-        post += 2 * (factors[f] - 1) * (L / factors[f]);
-    }
     for (Py_ssize_t c0 = 0; c0 < n_cols; c0 += FL) {
         Py_ssize_t nc = n_cols - c0 < FL ? n_cols - c0 : FL;
         /* z[m] = x[2m] + j x[2m+1] for this group of columns */
@@ -339,7 +332,7 @@ CLONES static void rfft_columns(const float *x, Py_ssize_t x_stride, Py_ssize_t 
             vf dr = 0.5f * (zr - cr), di = 0.5f * (zi - ci);
             /* o = -j d */
             vf orr = di, oi = -dr;
-            float wr = post[2 * k], wi = post[2 * k + 1];
+            float wr = w[2 * k], wi = w[2 * k + 1]; /* past the stages' tables: the split's W_n^k */
             vf xr_ = er + CMUL_RE(orr, oi, wr, wi), xi_ = ei + CMUL_IM(orr, oi, wr, wi);
             float *o = out + 2 * (k * n_cols + c0);
             if (nc == FL) {

@@ -27,10 +27,11 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
+
 from . import bandpower, shading, steering
-from .transform import ColumnFFT, fast_length, irfft_columns
 from .directions import unit_vectors
 from .geometry import ArrayGeometry
+from .transform import ColumnFFT, fast_length, irfft_columns
 
 try:  # the compiled inner loops (service/engine/_kernels.c); numpy forms the same sums without them
     from . import _kernels
