@@ -390,7 +390,9 @@ def test_compiled_kernels_refuse_bad_buffers():
         _kernels.rfft(frame, 3, 3, 40, fft._radices, fft._twiddles, fft._scratch[:10], out)
 
 
-@pytest.mark.parametrize("n, columns", [(2560, 64), (1800, 16), (2160, 35), (4096, 7), (30, 9), (2, 1)])
+# Radices by case: 8 8 4 5 | 4 3 3 5 5 | 8 3 3 3 5 with a partial column group | 8 8 8 4 partial |
+# 8 2 | 3 5 | none.
+@pytest.mark.parametrize("n, columns", [(2560, 64), (1800, 16), (2160, 35), (4096, 7), (32, 16), (30, 9), (2, 1)])
 def test_column_fft_equals_numpy(rng, n, columns):
     """The engine's real FFT down columns (compiled when installed, else pocketfft) against
     numpy.fft.rfft in float64 (a general-purpose reference library). A float32 FFT's error

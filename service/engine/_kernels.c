@@ -193,7 +193,7 @@ CLONES static void rows(const float *x, Py_ssize_t frames, Py_ssize_t channels, 
  * transform of length n = 2M is a complex one of length M on z[m] = x[2m] +
  * j x[2m+1], split afterwards (the usual real FFT by a half-length complex
  * one). The complex transform is a self-sorting (Stockham) decimation in
- * frequency over radices 4, 2, 3 and 5 (Van Loan 1992, Computational
+ * frequency over radices 8, 4, 2, 3 and 5 (Van Loan 1992, Computational
  * Frameworks for the FFT; section numbers in transform.py are from memory).
  * Twiddles come precomputed from the caller. */
 #define FL 8
@@ -208,15 +208,20 @@ static inline __attribute__((always_inline)) void st(float *p, vf v) { *(vfu *)p
 #define CMUL_RE(ar, ai, wr, wi) ((ar) * (wr) - (ai) * (wi))
 #define CMUL_IM(ar, ai, wr, wi) ((ar) * (wi) + (ai) * (wr))
 
-/* One stage: length L = p * m, stride s (in vectors). Reads x planes, writes y planes.
- * y[t + s (p q + k)] = W_L^{q k} * sum_r x[t + s (q + r m)] w_p^{r k}. */
-static inline __attribute__((always_inline)) void stage(const float *xr, const float *xi, float *yr, float *yi,
-                                                         Py_ssize_t m, Py_ssize_t s, int p, const float *tw)
+/* One stage: length L = p * m, stride s (in vectors). Reads x, writes y planes.
+ * y[t + s (p q + k)] = W_L^{q k} * sum_r x[t + s (q + r m)] w_p^{r k}.
+ * Input element i is at xr + i * in_step (real part) and xi + i * in_step:
+ * in_step is FL for planes, and for the first stage twice the frame's row
+ * stride, so that it reads z[i] = x[2i] + j x[2i+1] straight from the frame
+ * (no packing pass). */
+static inline __attribute__((always_inline)) void stage(const float *xr, const float *xi, Py_ssize_t in_step,
+                                                         float *yr, float *yi, Py_ssize_t m, Py_ssize_t s, int p,
+                                                         const float *tw)
 {
     for (Py_ssize_t q = 0; q < m; q++) {
         const float *w = tw + 2 * (p - 1) * q;
         for (Py_ssize_t t = 0; t < s; t++) {
-#define X(r) (FL * (t + s * (q + (r) * m)))
+#define X(r) (in_step * (t + s * (q + (r) * m)))
 #define Y(k) (FL * (t + s * (p * q + (k))))
 #define OUT(k, br, bi)                                                             \
     do {                                                                           \
@@ -229,16 +234,35 @@ static inline __attribute__((always_inline)) void stage(const float *xr, const f
             st(yi + Y(k), CMUL_IM(br, bi, wr_, wi_));                              \
         }                                                                          \
     } while (0)
-            if (p == 4) {
+/* radix-4 butterfly of a0 .. a3 (t3 = (a1 - a3) * (-j)), outputs k0 .. k3 */
+#define DFT4(a0r, a0i, a1r, a1i, a2r, a2i, a3r, a3i, k0, k1, k2, k3)                    \
+    do {                                                                               \
+        vf t0r = a0r + a2r, t0i = a0i + a2i, t1r = a0r - a2r, t1i = a0i - a2i;          \
+        vf t2r = a1r + a3r, t2i = a1i + a3i, t3r = a1i - a3i, t3i = a3r - a1r;          \
+        OUT(k0, t0r + t2r, t0i + t2i);                                                 \
+        OUT(k1, t1r + t3r, t1i + t3i);                                                 \
+        OUT(k2, t0r - t2r, t0i - t2i);                                                 \
+        OUT(k3, t1r - t3r, t1i - t3i);                                                 \
+    } while (0)
+            if (p == 8) {
+                /* radix 2 across r, r + 4 (the difference turned by w_8^r), then radix 4 on each half */
+                const float h = 0.70710678118654752440f;
+                vf b0r = ld(xr + X(0)) + ld(xr + X(4)), b0i = ld(xi + X(0)) + ld(xi + X(4));
+                vf c0r = ld(xr + X(0)) - ld(xr + X(4)), c0i = ld(xi + X(0)) - ld(xi + X(4));
+                vf b1r = ld(xr + X(1)) + ld(xr + X(5)), b1i = ld(xi + X(1)) + ld(xi + X(5));
+                vf d1r = ld(xr + X(1)) - ld(xr + X(5)), d1i = ld(xi + X(1)) - ld(xi + X(5));
+                vf b2r = ld(xr + X(2)) + ld(xr + X(6)), b2i = ld(xi + X(2)) + ld(xi + X(6));
+                vf c2r = ld(xi + X(2)) - ld(xi + X(6)), c2i = ld(xr + X(6)) - ld(xr + X(2)); /* * -j */
+                vf b3r = ld(xr + X(3)) + ld(xr + X(7)), b3i = ld(xi + X(3)) + ld(xi + X(7));
+                vf d3r = ld(xr + X(3)) - ld(xr + X(7)), d3i = ld(xi + X(3)) - ld(xi + X(7));
+                vf c1r = h * (d1r + d1i), c1i = h * (d1i - d1r); /* * (1 - j) / sqrt 2 */
+                vf c3r = h * (d3i - d3r), c3i = -h * (d3r + d3i); /* * (-1 - j) / sqrt 2 */
+                DFT4(b0r, b0i, b1r, b1i, b2r, b2i, b3r, b3i, 0, 2, 4, 6);
+                DFT4(c0r, c0i, c1r, c1i, c2r, c2i, c3r, c3i, 1, 3, 5, 7);
+            } else if (p == 4) {
                 vf a0r = ld(xr + X(0)), a0i = ld(xi + X(0)), a1r = ld(xr + X(1)), a1i = ld(xi + X(1));
                 vf a2r = ld(xr + X(2)), a2i = ld(xi + X(2)), a3r = ld(xr + X(3)), a3i = ld(xi + X(3));
-                vf t0r = a0r + a2r, t0i = a0i + a2i, t1r = a0r - a2r, t1i = a0i - a2i;
-                vf t2r = a1r + a3r, t2i = a1i + a3i;
-                vf t3r = a1i - a3i, t3i = a3r - a1r; /* (a1 - a3) * (-j) */
-                OUT(0, t0r + t2r, t0i + t2i);
-                OUT(1, t1r + t3r, t1i + t3i);
-                OUT(2, t0r - t2r, t0i - t2i);
-                OUT(3, t1r - t3r, t1i - t3i);
+                DFT4(a0r, a0i, a1r, a1i, a2r, a2i, a3r, a3i, 0, 1, 2, 3);
             } else if (p == 2) {
                 vf a0r = ld(xr + X(0)), a0i = ld(xi + X(0)), a1r = ld(xr + X(1)), a1i = ld(xi + X(1));
                 OUT(0, a0r + a1r, a0i + a1i);
@@ -276,6 +300,7 @@ static inline __attribute__((always_inline)) void stage(const float *xr, const f
 #undef X
 #undef Y
 #undef OUT
+#undef DFT4
         }
     }
 }
@@ -292,37 +317,38 @@ CLONES static void rfft_columns(const float *x, Py_ssize_t x_stride, Py_ssize_t 
     float *pr = scratch, *pi = scratch + M * FL, *qr = scratch + 2 * M * FL, *qi = scratch + 3 * M * FL;
     for (Py_ssize_t c0 = 0; c0 < n_cols; c0 += FL) {
         Py_ssize_t nc = n_cols - c0 < FL ? n_cols - c0 : FL;
-        /* z[m] = x[2m] + j x[2m+1] for this group of columns */
-        for (Py_ssize_t m = 0; m < M; m++) {
-            const float *e = x + (2 * m) * x_stride + c0, *o = e + x_stride;
-            if (nc == FL) {
-                st(pr + m * FL, ld(e));
-                st(pi + m * FL, ld(o));
-            } else {
+        /* the complex transform of z[m] = x[2m] + j x[2m+1], ping-ponging between the p and q
+         * planes; a whole group of columns is read by the first stage straight from the frame */
+        const float *ar = x + c0, *ai = x + x_stride + c0;
+        Py_ssize_t step = 2 * x_stride;
+        if (nc < FL) {
+            for (Py_ssize_t m = 0; m < M; m++) {
+                const float *e = x + (2 * m) * x_stride + c0, *o = e + x_stride;
                 for (Py_ssize_t l = 0; l < FL; l++) {
-                    pr[m * FL + l] = l < nc ? e[l] : 0.0f;
-                    pi[m * FL + l] = l < nc ? o[l] : 0.0f;
+                    qr[m * FL + l] = l < nc ? e[l] : 0.0f;
+                    qi[m * FL + l] = l < nc ? o[l] : 0.0f;
                 }
             }
+            ar = qr, ai = qi, step = FL;
         }
-        /* the complex transform, ping-ponging between the p and q planes */
-        float *ar = pr, *ai = pi, *br = qr, *bi = qi;
+        float *br = pr, *bi = pi;
         const float *w = tw;
         Py_ssize_t L = M, s = 1;
         for (int f = 0; f < n_factors; f++) {
             int p = factors[f];
             Py_ssize_t m = L / p;
             switch (p) {
-            case 4: stage(ar, ai, br, bi, m, s, 4, w); break;
-            case 2: stage(ar, ai, br, bi, m, s, 2, w); break;
-            case 3: stage(ar, ai, br, bi, m, s, 3, w); break;
-            default: stage(ar, ai, br, bi, m, s, 5, w); break;
+            case 8: stage(ar, ai, step, br, bi, m, s, 8, w); break;
+            case 4: stage(ar, ai, step, br, bi, m, s, 4, w); break;
+            case 2: stage(ar, ai, step, br, bi, m, s, 2, w); break;
+            case 3: stage(ar, ai, step, br, bi, m, s, 3, w); break;
+            default: stage(ar, ai, step, br, bi, m, s, 5, w); break;
             }
             w += 2 * (p - 1) * m;
             L = m;
             s *= p;
-            float *tr = ar, *ti = ai;
-            ar = br, ai = bi, br = tr, bi = ti;
+            ar = br, ai = bi, step = FL;
+            br = br == pr ? qr : pr, bi = bi == pi ? qi : pi;
         }
         /* split: X[k] = (Z[k] + conj Z[M-k]) / 2 - j W^k (Z[k] - conj Z[M-k]) / 2 */
         for (Py_ssize_t k = 0; k <= M; k++) {
@@ -452,7 +478,7 @@ static PyObject *py_rfft(PyObject *self, PyObject *args)
     const int *fa = (const int *)factors.buf;
     int ok = 1;
     for (Py_ssize_t f = 0; f < n_factors; f++) {
-        if (fa[f] < 2 || fa[f] > 5 || product * fa[f] > M) {
+        if (((fa[f] < 2 || fa[f] > 5) && fa[f] != 8) || product * fa[f] > M) {
             ok = 0;
             break;
         }

@@ -27,7 +27,7 @@ except ImportError:  # pragma: no cover - exercised by installs without a C comp
 
 #: Columns per vector of the compiled transform (FL in _kernels.c): its scratch holds this many.
 _KERNEL_COLUMNS = 8
-_RADICES = (4, 2, 3, 5)
+_RADICES = (8, 4, 2, 3, 5)
 
 
 def _pocketfft():
@@ -58,7 +58,7 @@ def fast_length(need: int) -> int:
 
 
 def _radices(m: int):
-    """Radices 4, 2, 3, 5 whose product is ``m``, or None."""
+    """Radices 8, 4, 2, 3, 5 whose product is ``m``, or None."""
     out = []
     for p in _RADICES:
         while m % p == 0:
