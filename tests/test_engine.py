@@ -331,9 +331,10 @@ def test_compiled_kernels_equal_numpy(rng, geo):
     every_sensor[geo.channels - 1] = geo.positions_m - geo.phase_centre_m
     x, _ = broadband_plane_wave(every_sensor, C, FS, 57.0, 0.1 * rng.standard_normal(9000))
     wide = np.asfortranarray(np.column_stack([x, x[:, :1]]))  # an extra channel, column-major
-    audio_deg = [[57.0, 0.0], [120.0, 0.0], [10.0, 20.0]] + [[a, 0.0] for a in range(20, 180, 17)]
-    beams = BeamSet(fan(0, 180, 2), audio_deg, shading="taylor", bands_hz=[(300, 1400), (1400, 3000)])
-    for batch, size in ((1, 1024), (4, 97), (3, 4096)):
+    few = [[57.0, 0.0], [120.0, 0.0], [10.0, 20.0]]  # 4-wide beam groups in the compiled loop
+    many = few + [[a, 0.0] for a in range(20, 180, 17)]  # 8-wide groups
+    for batch, size, audio_deg in ((1, 1024, many), (4, 97, few), (3, 4096, many)):
+        beams = BeamSet(fan(0, 180, 2), audio_deg, shading="taylor", bands_hz=[(300, 1400), (1400, 3000)])
         a = Beamformer(geo, C, FS, 1024, beams, power_batch_blocks=batch, compiled=True)
         b = Beamformer(geo, C, FS, 1024, beams, power_batch_blocks=batch, compiled=False)
         parts_a = [a.process(wide[i:i + size]) for i in range(0, len(x), size)] + [a.flush()]
@@ -345,6 +346,7 @@ def test_compiled_kernels_equal_numpy(rng, geo):
         assert power_a.shape == power_b.shape and len(power_a) == len(x) // 1024
         assert np.max(np.abs(power_a - power_b)) < 1e-3
         assert np.max(np.abs(audio_a - audio_b)) < 1e-5 * np.max(np.abs(audio_b))
+        assert a._steer[0].audio.lanes == (4 if audio_deg is few else 8)
     if a.mirror_pair_rows:  # a fan over 0-180° on a symmetric array: mirror images come out of one pass
         assert len(a._steer[0].power.main_out) < len(beams.power_deg)
 
@@ -359,13 +361,17 @@ def test_compiled_kernels_refuse_bad_buffers():
     v = np.zeros((1, 2, 4), np.complex64)
     y = np.zeros((1, 8, 4), np.complex64)
     main, mirror = np.arange(8, dtype=np.int32), np.full(8, -1, np.int32)
-    _kernels.steer(h, None, v, 1, 4, 0, 4, 2, 2, 8, main, mirror, 8, y)  # the right sizes pass
+    _kernels.steer(h, None, v, 1, 4, 0, 4, 2, 2, 8, main, mirror, 8, y, 8)  # the right sizes pass
     with pytest.raises(ValueError, match="y: buffer"):
-        _kernels.steer(h, None, v, 1, 4, 0, 4, 2, 2, 8, main, mirror, 8, y[:, :4])
+        _kernels.steer(h, None, v, 1, 4, 0, 4, 2, 2, 8, main, mirror, 8, y[:, :4], 8)
     with pytest.raises(ValueError, match="bin or row range"):
-        _kernels.steer(h, None, v, 1, 4, 1, 4, 2, 2, 8, main, mirror, 8, y)
+        _kernels.steer(h, None, v, 1, 4, 1, 4, 2, 2, 8, main, mirror, 8, y, 8)
     with pytest.raises(ValueError, match="output beam index"):
-        _kernels.steer(h, None, v, 1, 4, 0, 4, 2, 2, 8, main, mirror + 9, 8, y)
+        _kernels.steer(h, None, v, 1, 4, 0, 4, 2, 2, 8, main, mirror + 9, 8, y, 8)
+    with pytest.raises(ValueError, match="lanes must be 4 or 8"):
+        _kernels.steer(h, None, v, 1, 4, 0, 4, 2, 2, 8, main, mirror, 8, y, 5)
+    with pytest.raises(ValueError, match="h_re: buffer"):  # 8 beams in 4-wide groups need two groups
+        _kernels.steer(np.zeros((1, 4, 2, 4), np.float32), None, v, 1, 4, 0, 4, 2, 2, 8, main, mirror, 8, y, 4)
     x = np.zeros((10, 3), np.float32)
     idx, ones = np.array([0, 3], np.int32), np.ones(2, np.float32)
     with pytest.raises(ValueError, match="channel index"):

@@ -267,9 +267,12 @@ class _BeamProduct:
                 np.arange(n_beams, dtype=np.int32), np.full(n_beams, -1, np.int32))
             q, formed = q[:, self.main_out], len(self.main_out)
             # (beam groups, bins, rows, beams of the group), real and imaginary planes
-            groups = -(-formed // _KERNEL_LANES)
-            planes = [np.pad(part, ((0, 0), (0, groups * _KERNEL_LANES - formed), (0, 0)))
-                      .reshape(n_bins, groups, _KERNEL_LANES, -1).transpose(1, 0, 3, 2)
+            # Few formed beams (the audio beams) go in 4-wide groups: half the padding, and half the
+            # steering streamed every block (measured in bench/: the loop waits on the cache there).
+            self.lanes = _KERNEL_LANES if formed > _KERNEL_LANES // 2 else _KERNEL_LANES // 2
+            groups = -(-formed // self.lanes)
+            planes = [np.pad(part, ((0, 0), (0, groups * self.lanes - formed), (0, 0)))
+                      .reshape(n_bins, groups, self.lanes, -1).transpose(1, 0, 3, 2)
                       for part in ((q,) if symmetric else (q.real, q.imag))]
             self.h = [np.ascontiguousarray(part, dtype=np.float32) for part in planes]
         elif n_beams * n_sensors <= _ELEMENTWISE_MAX and not symmetric:
@@ -291,7 +294,7 @@ class _BeamProduct:
             y = np.empty((n_blocks, self.n_beams, self.n_bins), np.complex64)
             _kernels.steer(self.h[0], self.h[1] if len(self.h) > 1 else None, spec, n_blocks, width, k0,
                            self.n_bins, n_rows, self.n_plain, len(self.main_out), self.main_out, self.mirror_out,
-                           self.n_beams, y)
+                           self.n_beams, y, self.lanes)
             return y, self.lag
         band = spec[:, k0:k0 + self.n_bins]
         if self.elementwise:  # h: (bins, beams, rows)
