@@ -351,6 +351,26 @@ def test_compiled_kernels_equal_numpy(rng, geo):
         assert len(a._steer[0].power.main_out) < len(beams.power_deg)
 
 
+@pytest.mark.skipif(not COMPILED_AVAILABLE, reason="the compiled kernels are not installed")
+def test_compiled_history_rows_equal_numpy(rng):
+    """The compiled history write takes eight rows at once where their channels run up or down by
+    one; every mix of such groups, other groups and a short tail gives numpy's
+    ca * x[:, ia] + cb * x[:, ib] to float32 rounding (the C loop may fuse a product and the sum)."""
+    from beamtap.service.engine import _kernels
+
+    channels, frames = 40, 13
+    x = rng.standard_normal((frames, channels)).astype(np.float32)
+    ia = np.concatenate([np.arange(8), np.arange(39, 31, -1), rng.integers(0, channels, 8), [5, 2, 7]])
+    ib = np.concatenate([np.arange(39, 31, -1), np.arange(8, 16), np.arange(16, 24), [1, 1, 0]])
+    ia, ib = ia.astype(np.int32), ib.astype(np.int32)
+    ca, cb = rng.standard_normal((2, len(ia))).astype(np.float32)
+    out = np.zeros((frames + 3, len(ia)), np.float32)
+    _kernels.rows(x, frames, channels, ia, ib, ca, cb, len(ia), out, len(out), 2)
+    want = ca * x[:, ia] + cb * x[:, ib]
+    np.testing.assert_allclose(out[2:2 + frames], want, rtol=1e-6, atol=1e-6)
+    assert not out[:2].any() and not out[-1].any()
+
+
 def test_compiled_kernels_refuse_bad_buffers():
     """The compiled loops check sizes before touching memory: a short buffer is a ValueError."""
     if not COMPILED_AVAILABLE:

@@ -38,20 +38,6 @@
 #include "_steer_lanes.h"
 #undef LANES
 
-/* out[col + f, r] = ca[r] x[f, ia[r]] + cb[r] x[f, ib[r]]: history rows from
- * input frames x (frames, channels), float32; out is (out_frames, n_rows), one
- * history row per column, so both sides of a frame are contiguous. */
-CLONES static void rows(const float *x, Py_ssize_t frames, Py_ssize_t channels, const int *ia, const int *ib,
-                        const float *ca, const float *cb, Py_ssize_t n_rows, float *out, Py_ssize_t col)
-{
-    for (Py_ssize_t f = 0; f < frames; f++) {
-        const float *xf = x + f * channels;
-        float *o = out + (col + f) * n_rows;
-        for (Py_ssize_t r = 0; r < n_rows; r++)
-            o[r] = ca[r] * xf[ia[r]] + cb[r] * xf[ib[r]];
-    }
-}
-
 /* ---- Real FFT down the columns of a frame --------------------------------
  *
  * The frame is (n, columns) float32, a window of the history (frames down,
@@ -75,6 +61,63 @@ static inline __attribute__((always_inline)) void st(float *p, vf v) { *(vfu *)p
 /* (ar + j ai)(wr + j wi), w a scalar twiddle */
 #define CMUL_RE(ar, ai, wr, wi) ((ar) * (wr) - (ai) * (wi))
 #define CMUL_IM(ar, ai, wr, wi) ((ar) * (wi) + (ai) * (wr))
+
+/* ---- History rows from input frames --------------------------------------
+ *
+ * out[col + f, r] = ca[r] x[f, ia[r]] + cb[r] x[f, ib[r]]: history rows from
+ * input frames x (frames, channels), float32; out is (out_frames, n_rows), one
+ * history row per column, so both sides of a frame are contiguous. Channel
+ * indices mostly run in steps of +1 or -1 for eight rows at a time (channels
+ * in order, and the mirror partner of a line's sensor counting down), so such
+ * a group is two vector loads, reversed where they run down, instead of
+ * sixteen indexed loads. */
+#define MAX_ROW_GROUPS 512
+
+/* +1 when idx[0 .. FL-1] runs up by one, -1 when it runs down by one, 0 otherwise */
+static int run_of(const int *idx)
+{
+    int up = 1, down = 1;
+    for (int l = 1; l < FL; l++) {
+        up &= idx[l] == idx[0] + l;
+        down &= idx[l] == idx[0] - l;
+    }
+    return up ? 1 : down ? -1 : 0;
+}
+
+static inline __attribute__((always_inline)) vf load_run(const float *xf, int first, int run)
+{
+    if (run > 0)
+        return ld(xf + first);
+    return __builtin_shuffle(ld(xf + first - (FL - 1)), (vi){7, 6, 5, 4, 3, 2, 1, 0});
+}
+
+CLONES static void rows(const float *x, Py_ssize_t frames, Py_ssize_t channels, const int *ia, const int *ib,
+                        const float *ca, const float *cb, Py_ssize_t n_rows, float *out, Py_ssize_t col)
+{
+    signed char run_a[MAX_ROW_GROUPS], run_b[MAX_ROW_GROUPS];
+    Py_ssize_t groups = n_rows / FL < MAX_ROW_GROUPS ? n_rows / FL : MAX_ROW_GROUPS;
+    for (Py_ssize_t g = 0; g < groups; g++) {
+        run_a[g] = (signed char)run_of(ia + g * FL);
+        run_b[g] = (signed char)run_of(ib + g * FL);
+        if (!(run_a[g] && run_b[g]))
+            run_a[g] = 0;
+    }
+    for (Py_ssize_t f = 0; f < frames; f++) {
+        const float *xf = x + f * channels;
+        float *o = out + (col + f) * n_rows;
+        Py_ssize_t r = 0;
+        for (Py_ssize_t g = 0; g < groups; g++, r += FL) {
+            if (run_a[g]) {
+                st(o + r, ld(ca + r) * load_run(xf, ia[r], run_a[g]) + ld(cb + r) * load_run(xf, ib[r], run_b[g]));
+            } else {
+                for (Py_ssize_t l = r; l < r + FL; l++)
+                    o[l] = ca[l] * xf[ia[l]] + cb[l] * xf[ib[l]];
+            }
+        }
+        for (; r < n_rows; r++)
+            o[r] = ca[r] * xf[ia[r]] + cb[r] * xf[ib[r]];
+    }
+}
 
 /* One stage: length L = p * m, stride s (in vectors). Reads x, writes y planes.
  * y[t + s (p q + k)] = W_L^{q k} * sum_r x[t + s (q + r m)] w_p^{r k}.
