@@ -178,7 +178,7 @@ def main():
         md.append(f"| {r['sensors']} | {r['beams']} | {r['audio_beams']} | {r['block']} | {r['fft_size']} | "
                   f"{r['engine_ms_per_block']:.3f} | {1e3 * r['engine_ms_per_block'] / r['block']:.2f} | "
                   f"{r['engine_rtf']:.1f} | {r['memory_growth_bytes']} B |")
-    md += ["", "Rerun: `python bench/engine_bench.py` (about three minutes).", ""]
+    md += ["", "Rerun: `python bench/engine_bench.py` (under a minute here; longer on a slow host).", ""]
     (HERE / "results.md").write_text("\n".join(md))
     print("\n".join(md))
 
