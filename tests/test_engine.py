@@ -215,25 +215,34 @@ def test_unity_look_gain_with_dead_sensors_and_calibration():
         assert np.max(np.abs(y)) == pytest.approx(0.3, rel=1e-3)
 
 
-def test_nan_and_inf_are_zeroed_counted_and_do_not_poison(rng):
-    geo = ArrayGeometry.line(4, 0.5)
-    x = (0.1 * rng.standard_normal((8192, 4))).astype(np.float32)
+@pytest.mark.parametrize("sensors", [4, 19])  # 19: the compiled scan's vector lanes and a tail
+@pytest.mark.parametrize("compiled", [True, False])
+def test_nan_and_inf_are_zeroed_counted_and_do_not_poison(rng, sensors, compiled):
+    if compiled and not COMPILED_AVAILABLE:
+        pytest.skip("the compiled kernels are not installed")
+    geo = ArrayGeometry.line(sensors, 0.5)
+    x = (0.1 * rng.standard_normal((8192, sensors + 1))).astype(np.float32)  # one channel no sensor uses
     bad = x.copy()
     bad[100, 1] = np.nan
     bad[200, 2] = np.inf
     bad[300, 3] = -np.inf
     bad[400, 0] = 1.5
+    bad[500, sensors] = np.nan  # in the unused channel: still counted, never read
+    bad[600, sensors - 1] = -1.0  # full scale counts as clipped
     beams = BeamSet(fan(0, 180, 30), [[90.0, 0.0]], bands_hz=[(300, 3000)])
-    bf = Beamformer(geo, C, FS, 1024, beams)
+    bf = Beamformer(geo, C, FS, 1024, beams, compiled=compiled)
     r = bf.process(bad)
-    assert (r.nan_count, r.clip_count) == (3, 1)
+    assert (r.nan_count, r.clip_count) == (4, 2)
     assert np.all(np.isfinite(r.audio)) and np.all(np.isfinite(r.power_db))
+    assert np.isnan(bad[100, 1])  # the caller's array is left alone
     # later blocks equal those of a clean run with the same zeros
     fixed = x.copy()
     fixed[100, 1] = fixed[200, 2] = fixed[300, 3] = 0.0
-    fixed[400, 0] = 1.5
-    ref = Beamformer(geo, C, FS, 1024, beams).process(fixed)
+    fixed[400, 0], fixed[600, sensors - 1] = 1.5, -1.0
+    ref = Beamformer(geo, C, FS, 1024, beams, compiled=compiled).process(fixed)
     assert np.allclose(r.audio, ref.audio, atol=1e-7)
+    clean = Beamformer(geo, C, FS, 1024, beams, compiled=compiled).process(x)
+    assert (clean.nan_count, clean.clip_count) == (0, 0)
 
 
 def test_retarget_between_blocks_with_bounded_crossfade(rng):

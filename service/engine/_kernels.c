@@ -70,7 +70,9 @@ static inline __attribute__((always_inline)) void st(float *p, vf v) { *(vfu *)p
  * indices mostly run in steps of +1 or -1 for eight rows at a time (channels
  * in order, and the mirror partner of a line's sensor counting down), so such
  * a group is two vector loads, reversed where they run down, instead of
- * sixteen indexed loads. */
+ * sixteen indexed loads. The same pass scans every input value (all
+ * channels, used or not) for the smallest, the largest and any that is not
+ * finite, so that clean blocks need no separate scan before the write. */
 #define MAX_ROW_GROUPS 512
 
 /* +1 when idx[0 .. FL-1] runs up by one, -1 when it runs down by one, 0 otherwise */
@@ -92,8 +94,12 @@ static inline __attribute__((always_inline)) vf load_run(const float *xf, int fi
 }
 
 CLONES static void rows(const float *x, Py_ssize_t frames, Py_ssize_t channels, const int *ia, const int *ib,
-                        const float *ca, const float *cb, Py_ssize_t n_rows, float *out, Py_ssize_t col)
+                        const float *ca, const float *cb, Py_ssize_t n_rows, float *out, Py_ssize_t col,
+                        float *lo_out, float *hi_out, int *finite_out)
 {
+    /* v - v is 0 for a finite v and NaN for an infinite or NaN one */
+    vf lo = {0}, hi = {0}, bad = {0};
+    float lo_s = 0.0f, hi_s = 0.0f, bad_s = 0.0f;
     signed char run_a[MAX_ROW_GROUPS], run_b[MAX_ROW_GROUPS];
     Py_ssize_t groups = n_rows / FL < MAX_ROW_GROUPS ? n_rows / FL : MAX_ROW_GROUPS;
     for (Py_ssize_t g = 0; g < groups; g++) {
@@ -105,6 +111,20 @@ CLONES static void rows(const float *x, Py_ssize_t frames, Py_ssize_t channels, 
     for (Py_ssize_t f = 0; f < frames; f++) {
         const float *xf = x + f * channels;
         float *o = out + (col + f) * n_rows;
+        Py_ssize_t c = 0;
+        for (; c + FL <= channels; c += FL) {
+            vf v = ld(xf + c);
+            vi below = v < lo, above = v > hi;
+            lo = (vf)(((vi)v & below) | ((vi)lo & ~below));
+            hi = (vf)(((vi)v & above) | ((vi)hi & ~above));
+            bad += (v - v) * (v - v);
+        }
+        for (; c < channels; c++) {
+            float v = xf[c];
+            lo_s = v < lo_s ? v : lo_s;
+            hi_s = v > hi_s ? v : hi_s;
+            bad_s += (v - v) * (v - v);
+        }
         Py_ssize_t r = 0;
         for (Py_ssize_t g = 0; g < groups; g++, r += FL) {
             if (run_a[g]) {
@@ -117,6 +137,13 @@ CLONES static void rows(const float *x, Py_ssize_t frames, Py_ssize_t channels, 
         for (; r < n_rows; r++)
             o[r] = ca[r] * xf[ia[r]] + cb[r] * xf[ib[r]];
     }
+    for (int l = 0; l < FL; l++) {
+        lo_s = lo[l] < lo_s ? lo[l] : lo_s;
+        hi_s = hi[l] > hi_s ? hi[l] : hi_s;
+        bad_s += bad[l];
+    }
+    *lo_out = lo_s, *hi_out = hi_s;
+    *finite_out = bad_s == 0.0f; /* a NaN sum compares unequal */
 }
 
 /* One stage: length L = p * m, stride s (in vectors). Reads x, writes y planes.
@@ -370,17 +397,19 @@ static PyObject *py_rows(PyObject *self, PyObject *args)
             PyErr_SetString(PyExc_ValueError, "rows: channel index outside the input");
             ok = 0;
         }
+    float lo = 0.0f, hi = 0.0f;
+    int finite = 1;
     if (ok) {
         Py_BEGIN_ALLOW_THREADS
         rows((const float *)x.buf, frames, channels, a, b, (const float *)ca.buf, (const float *)cb.buf, n_rows,
-             (float *)out.buf, col);
+             (float *)out.buf, col, &lo, &hi, &finite);
         Py_END_ALLOW_THREADS
     }
     Py_buffer *const held[] = {&x, &ia, &ib, &ca, &cb, &out};
     release_all(held, 6);
     if (!ok)
         return NULL;
-    Py_RETURN_NONE;
+    return Py_BuildValue("ddO", (double)lo, (double)hi, finite ? Py_True : Py_False);
 }
 
 static PyObject *py_rfft(PyObject *self, PyObject *args)
@@ -425,7 +454,8 @@ static PyMethodDef methods[] = {
      "steer(h_re, h_im, v, n_blocks, v_bins, k0, n_bins, n_rows, n_plain, n_beams, main_out, mirror_out, n_out, y): "
      "per-bin steered sums."},
     {"rows", py_rows, METH_VARARGS,
-     "rows(x, frames, channels, ia, ib, ca, cb, n_rows, out, out_frames, col): history rows from input frames."},
+     "rows(x, frames, channels, ia, ib, ca, cb, n_rows, out, out_frames, col) -> (min, max, all finite): history rows "
+     "from input frames, and a scan of every input value."},
     {"rfft", py_rfft, METH_VARARGS,
      "rfft(x, x_stride, n_cols, n, factors, tw, scratch, out): real FFT down the columns of a frame."},
     {NULL, NULL, 0, NULL},

@@ -147,6 +147,7 @@ class _Basis:
         self.pairs = pairs
         # Every input channel feeds an active sensor, in order: no gather needed.
         self._cols = None if np.array_equal(channels, np.arange(geometry.n_input_channels)) else channels
+        self._n_inputs = geometry.n_input_channels
         if pairs is None:
             self.n_rows = self.n_sums = len(channels)
             self.kernel_rows = _typed_rows(channels, channels, np.ones(len(channels)), np.zeros(len(channels)))
@@ -166,7 +167,8 @@ class _Basis:
 
     def write(self, out: np.ndarray, chunk: np.ndarray) -> None:
         """History ``out`` (frames, n_rows), one row per column, from input frames ``chunk`` (frames, channels)."""
-        x = chunk if self._cols is None else chunk[:, self._cols]
+        # Channels past the configured inputs (a wider sound card) are not read.
+        x = chunk[:, :self._n_inputs] if self._cols is None else chunk[:, self._cols]
         if self.pairs is None:
             out[:] = x
             return
@@ -566,7 +568,10 @@ class Beamformer:
         if block.ndim != 2 or block.shape[1] < self.geometry.n_input_channels:
             raise ValueError(f"block has shape {block.shape}, expected (frames, "
                              f">= {self.geometry.n_input_channels}) channels")
-        x, nan_count, clip_count = sanitize(block)
+        # float32 without a copy when it already is; the scan for non-finite and clipped samples
+        # happens where the block is written to the history (_push).
+        x = block if block.dtype == np.float32 else np.asarray(block, dtype=np.float32)
+        nan_count = clip_count = 0
         steer, n_fft = self._steer
         frames = len(x)
         first = self._sample
@@ -577,7 +582,9 @@ class Beamformer:
         while pos < frames:
             to_boundary = self.block_frames - (self._sample - self._power_origin) % self.block_frames
             b = min(frames - pos, to_boundary)
-            frame = self._push(x[pos:pos + b], n_fft)
+            frame, bad, clipped = self._push(x[pos:pos + b], n_fft)
+            nan_count += bad
+            clip_count += clipped
             spec = steer.fft(frame)  # (n_fft//2+1, rows), one FFT serves both paths
             if n_audio:
                 audio[pos:pos + b] = self._audio(spec, b, n_fft)
@@ -597,19 +604,35 @@ class Beamformer:
         n_audio = len(self.beams.audio_deg)
         return BlockResult(self._sample, np.zeros((0, n_audio), np.float32), rows[0], rows[1])
 
-    def _push(self, chunk: np.ndarray, n_fft: int) -> np.ndarray:
+    def _push(self, chunk: np.ndarray, n_fft: int) -> tuple:
+        """Write ``chunk`` (frames, channels) float32 to the history, non-finite samples as zero.
+
+        Returns the frame ending with it and the counts of non-finite and clipped samples.
+        """
         b = len(chunk)
         if self._pos + b > self._buf.shape[0]:
             self._buf[:n_fft] = self._buf[self._pos - n_fft:self._pos]
             self._pos = n_fft
+        bad = clipped = 0
         if self.compiled:
-            ia, ib, ca, cb = self._basis.kernel_rows
             chunk = np.ascontiguousarray(chunk)
-            _kernels.rows(chunk, b, chunk.shape[1], ia, ib, ca, cb, len(ia), self._buf, len(self._buf), self._pos)
+            lo, hi, finite = self._write_rows(chunk)
+            if not finite:  # rare: written again from a cleaned copy
+                chunk, bad, clipped = sanitize(chunk)
+                self._write_rows(chunk)
+            elif hi >= 1.0 or lo <= -1.0:
+                clipped = int(np.count_nonzero(np.abs(chunk) >= 1.0))
         else:
+            chunk, bad, clipped = sanitize(chunk)
             self._basis.write(self._buf[self._pos:self._pos + b], chunk)
         self._pos += b
-        return self._buf[self._pos - n_fft:self._pos]
+        return self._buf[self._pos - n_fft:self._pos], bad, clipped
+
+    def _write_rows(self, chunk: np.ndarray) -> tuple:
+        """The compiled history write at the current position; returns (min, max, all finite) of ``chunk``."""
+        ia, ib, ca, cb = self._basis.kernel_rows
+        return _kernels.rows(chunk, len(chunk), chunk.shape[1], ia, ib, ca, cb, len(ia), self._buf, len(self._buf),
+                             self._pos)
 
     def _audio(self, spec: np.ndarray, b: int, n_fft: int) -> np.ndarray:
         steer = self._steer[0]
