@@ -451,8 +451,8 @@ static PyObject *py_rfft(PyObject *self, PyObject *args)
 
 static PyMethodDef methods[] = {
     {"steer", py_steer, METH_VARARGS,
-     "steer(h_re, h_im, v, n_blocks, v_bins, k0, n_bins, n_rows, n_plain, n_beams, main_out, mirror_out, n_out, y): "
-     "per-bin steered sums."},
+     "steer(h_re, h_im, v, n_blocks, v_bins, k0, n_bins, n_rows, n_plain, n_beams, main_out, mirror_out, n_out, y, "
+     "lanes): per-bin steered sums, beams in groups of lanes (4 or 8)."},
     {"rows", py_rows, METH_VARARGS,
      "rows(x, frames, channels, ia, ib, ca, cb, n_rows, out, out_frames, col) -> (min, max, all finite): history rows "
      "from input frames, and a scan of every input value."},

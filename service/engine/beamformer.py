@@ -50,7 +50,8 @@ MAX_STEERING_BYTES = 512 * 2**20
 _ELEMENTWISE_MAX = 128
 #: Fewest sensors for which the mirror-pair rows pay for their extra pass over each block.
 _PAIR_BASIS_MIN_SENSORS = 48
-#: Beams per vector of the compiled loop (LANES in _kernels.c).
+#: Beams per vector of the compiled loop for the power fans (LANES in _kernels.c; half for a
+#: few audio beams).
 _KERNEL_LANES = 8
 
 
@@ -570,7 +571,7 @@ class Beamformer:
                              f">= {self.geometry.n_input_channels}) channels")
         # float32 without a copy when it already is; the scan for non-finite and clipped samples
         # happens where the block is written to the history (_push).
-        x = block if block.dtype == np.float32 else np.asarray(block, dtype=np.float32)
+        x = np.asarray(block, dtype=np.float32)
         nan_count = clip_count = 0
         steer, n_fft = self._steer
         frames = len(x)
