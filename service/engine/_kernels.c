@@ -86,6 +86,14 @@ static int run_of(const int *idx)
     return up ? 1 : down ? -1 : 0;
 }
 
+static inline __attribute__((always_inline)) void scalar_rows(float *o, const float *xf, const int *ia, const int *ib,
+                                                               const float *ca, const float *cb, Py_ssize_t r0,
+                                                               Py_ssize_t r1)
+{
+    for (Py_ssize_t r = r0; r < r1; r++)
+        o[r] = ca[r] * xf[ia[r]] + cb[r] * xf[ib[r]];
+}
+
 static inline __attribute__((always_inline)) vf load_run(const float *xf, int first, int run)
 {
     if (run > 0)
@@ -102,10 +110,11 @@ CLONES static void rows(const float *x, Py_ssize_t frames, Py_ssize_t channels, 
     float lo_s = 0.0f, hi_s = 0.0f, bad_s = 0.0f;
     signed char run_a[MAX_ROW_GROUPS], run_b[MAX_ROW_GROUPS];
     Py_ssize_t groups = n_rows / FL < MAX_ROW_GROUPS ? n_rows / FL : MAX_ROW_GROUPS;
+    /* run_a[g] != 0: group g is two vector loads (both index lists run); the signs give the directions */
     for (Py_ssize_t g = 0; g < groups; g++) {
         run_a[g] = (signed char)run_of(ia + g * FL);
         run_b[g] = (signed char)run_of(ib + g * FL);
-        if (!(run_a[g] && run_b[g]))
+        if (!run_b[g])
             run_a[g] = 0;
     }
     for (Py_ssize_t f = 0; f < frames; f++) {
@@ -125,17 +134,13 @@ CLONES static void rows(const float *x, Py_ssize_t frames, Py_ssize_t channels, 
             hi_s = v > hi_s ? v : hi_s;
             bad_s += (v - v) * (v - v);
         }
-        Py_ssize_t r = 0;
-        for (Py_ssize_t g = 0; g < groups; g++, r += FL) {
-            if (run_a[g]) {
+        for (Py_ssize_t g = 0, r = 0; g < groups; g++, r += FL) {
+            if (run_a[g])
                 st(o + r, ld(ca + r) * load_run(xf, ia[r], run_a[g]) + ld(cb + r) * load_run(xf, ib[r], run_b[g]));
-            } else {
-                for (Py_ssize_t l = r; l < r + FL; l++)
-                    o[l] = ca[l] * xf[ia[l]] + cb[l] * xf[ib[l]];
-            }
+            else
+                scalar_rows(o, xf, ia, ib, ca, cb, r, r + FL);
         }
-        for (; r < n_rows; r++)
-            o[r] = ca[r] * xf[ia[r]] + cb[r] * xf[ib[r]];
+        scalar_rows(o, xf, ia, ib, ca, cb, groups * FL, n_rows);
     }
     for (int l = 0; l < FL; l++) {
         lo_s = lo[l] < lo_s ? lo[l] : lo_s;

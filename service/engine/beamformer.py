@@ -146,9 +146,10 @@ class _Basis:
         if len(channels) < _PAIR_BASIS_MIN_SENSORS:
             pairs = None
         self.pairs = pairs
-        # Every input channel feeds an active sensor, in order: no gather needed.
-        self._cols = None if np.array_equal(channels, np.arange(geometry.n_input_channels)) else channels
-        self._n_inputs = geometry.n_input_channels
+        # Every input channel feeds an active sensor, in order: a view, no gather. Channels past the
+        # configured inputs (a wider sound card) are not read.
+        n_inputs = geometry.n_input_channels
+        self._cols = slice(0, n_inputs) if np.array_equal(channels, np.arange(n_inputs)) else channels
         if pairs is None:
             self.n_rows = self.n_sums = len(channels)
             self.kernel_rows = _typed_rows(channels, channels, np.ones(len(channels)), np.zeros(len(channels)))
@@ -168,8 +169,7 @@ class _Basis:
 
     def write(self, out: np.ndarray, chunk: np.ndarray) -> None:
         """History ``out`` (frames, n_rows), one row per column, from input frames ``chunk`` (frames, channels)."""
-        # Channels past the configured inputs (a wider sound card) are not read.
-        x = chunk[:, :self._n_inputs] if self._cols is None else chunk[:, self._cols]
+        x = chunk[:, self._cols]
         if self.pairs is None:
             out[:] = x
             return
@@ -622,7 +622,7 @@ class Beamformer:
                 chunk, bad, clipped = sanitize(chunk)
                 self._write_rows(chunk)
             elif hi >= 1.0 or lo <= -1.0:
-                clipped = int(np.count_nonzero(np.abs(chunk) >= 1.0))
+                clipped = _count_clipped(chunk)
         else:
             chunk, bad, clipped = sanitize(chunk)
             self._basis.write(self._buf[self._pos:self._pos + b], chunk)
@@ -706,5 +706,10 @@ def sanitize(block: np.ndarray) -> tuple:
         nan_count = int(bad.sum())
         x[bad] = 0.0
         top, bottom = float(x.max()), float(x.min())
-    clip_count = int(np.count_nonzero(np.abs(x) >= 1.0)) if (top >= 1.0 or bottom <= -1.0) else 0
+    clip_count = _count_clipped(x) if (top >= 1.0 or bottom <= -1.0) else 0
     return x, nan_count, clip_count
+
+
+def _count_clipped(x: np.ndarray) -> int:
+    """Samples at or beyond full scale, |x| >= 1 (non-finite ones already zeroed)."""
+    return int(np.count_nonzero(np.abs(x) >= 1.0))
