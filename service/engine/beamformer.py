@@ -476,22 +476,22 @@ class Beamformer:
     def apply(self, prepared) -> BlockResult:
         """Switch to prepared steering at the current block boundary.
 
-        Pending power blocks are first formed with the beams they were
-        recorded under and returned (as from :meth:`flush`); audio beams
-        crossfade from the old to the new directions over
-        ``crossfade_frames``.
+        Any change is allowed (bands, transition width, shading, beam
+        counts, FFT length). Pending power blocks are first formed with the
+        beams they were recorded under and returned (as from :meth:`flush`).
+        Audio beam ``i`` of the new set crossfades from audio beam ``i`` of
+        the old set over ``crossfade_frames``; new beams past the old count
+        fade in from silence, and old beams past the new count end here.
         """
         released = self.flush()
         old, old_n = self._steer
         new, new_n = prepared
-        same_audio_count = (old.audio is not None and new.audio is not None
-                            and len(old.beams.audio_deg) == len(new.beams.audio_deg) and old_n == new_n)
-        self._fade_from = (old.audio, self._sample) if same_audio_count else None
         self._steer = prepared
-        if new_n > self._buf.shape[0] - self.block_frames:
-            self._grow_history(new_n)
+        # The old frame length stays in the history while the old beams are still faded out.
+        fading = new.audio is not None
+        self._fade_from = (old, old_n, self._sample) if fading else None
+        self._ensure_history(max(old_n, new_n) if fading else new_n)
         return released
-
     def retarget(self, beams: BeamSet) -> BlockResult:
         """Build and apply a new beam set in one call (see :meth:`apply`)."""
         return self.apply(self.prepare(beams))
@@ -517,12 +517,22 @@ class Beamformer:
         # frames' worth of new blocks keeps that copy to a few percent of the block's work.
         return n_fft + max(4 * self.block_frames, 4 * n_fft)
 
-    def _grow_history(self, n_fft: int) -> None:
+    def _ensure_history(self, n_keep: int) -> None:
+        """Make the last ``n_keep`` frames addressable before the write position.
+
+        After a retarget to a longer frame the write position may sit below
+        the new frame length (it moves through the buffer and back), so the
+        history is laid out again whenever either the position or the buffer
+        is short; samples never written (before a reset) stay zero, as in a
+        fresh engine.
+        """
+        if self._pos >= n_keep and self._buf.shape[0] >= self._history_frames(n_keep):
+            return
         keep = self._buf[: self._pos]
-        buf = np.zeros((self._history_frames(n_fft), self._basis.n_rows), np.float32)
-        take = min(len(keep), n_fft)
-        buf[n_fft - take: n_fft] = keep[len(keep) - take:]
-        self._buf, self._pos = buf, n_fft
+        buf = np.zeros((max(self._history_frames(n_keep), self._buf.shape[0]), self._basis.n_rows), np.float32)
+        take = min(len(keep), n_keep)
+        buf[n_keep - take: n_keep] = keep[len(keep) - take:]
+        self._buf, self._pos = buf, n_keep
 
     # ---- properties ---------------------------------------------------
     @property
@@ -612,8 +622,9 @@ class Beamformer:
         """
         b = len(chunk)
         if self._pos + b > self._buf.shape[0]:
-            self._buf[:n_fft] = self._buf[self._pos - n_fft:self._pos]
-            self._pos = n_fft
+            keep = n_fft if self._fade_from is None else max(n_fft, self._fade_from[1])
+            self._buf[:keep] = self._buf[self._pos - keep:self._pos]
+            self._pos = keep
         bad = clipped = 0
         if self.compiled:
             chunk = np.ascontiguousarray(chunk)
@@ -639,10 +650,16 @@ class Beamformer:
         steer = self._steer[0]
         y = _beam_audio(steer.audio, spec, b, n_fft)
         if self._fade_from is not None:
-            old, start = self._fade_from
+            old, old_n, start = self._fade_from
             n = self._sample + np.arange(b)
-            ramp = np.clip((n - start + 0.5) / self.crossfade_frames, 0.0, 1.0)[:, None]
-            y = ramp * y + (1.0 - ramp) * _beam_audio(old, spec, b, n_fft)
+            ramp = np.clip((n - start + 0.5) / self.crossfade_frames, 0.0, 1.0)[:, None].astype(np.float32)
+            kept = 0 if old.audio is None else min(old.audio.n_beams, y.shape[1])
+            if kept:
+                # The old beams need the old frame length's spectra when the retarget changed it.
+                old_spec = spec if old_n == n_fft else old.fft(self._buf[self._pos - old_n:self._pos])
+                y_old = _beam_audio(old.audio, old_spec, b, old_n)[:, :kept]
+                y[:, :kept] = ramp * y[:, :kept] + (1.0 - ramp) * y_old
+            y[:, kept:] *= ramp  # beams new in this set rise from silence
             if self._sample + b >= start + self.crossfade_frames:
                 self._fade_from = None
         return y
