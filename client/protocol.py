@@ -22,8 +22,8 @@ import numpy as np
 
 PROTOCOL_VERSION = 1
 TOPICS = ("power", "audio", "raw", "status", "beams")
-#: Largest control request accepted, bytes.
-MAX_REQUEST_BYTES = 65536
+#: Largest control request accepted, bytes (a 20,000-direction list is about 360 kB of msgpack).
+MAX_REQUEST_BYTES = 512 * 1024
 
 
 class ProtocolError(ValueError):

@@ -17,6 +17,7 @@ import numpy as np
 
 from beamtap.errors import ConfigError
 
+from .engine import cost
 from .engine import directions as dirs
 from .engine.beamformer import BeamSet
 from .engine.geometry import ArrayGeometry
@@ -43,7 +44,7 @@ class _Table:
         return f"{self.path}.{name}" if self.path else name
 
     def fail(self, name: str, value, expected: str):
-        shown = "missing" if value is _REQUIRED else f"got {value!r}"
+        shown = "missing" if value is _REQUIRED else "got nil" if value is None else f"got {value!r}"
         raise ConfigError(self.where, self.key(name), f"{shown}, expected {expected}")
 
     def has(self, name: str) -> bool:
@@ -55,7 +56,10 @@ class _Table:
             if default is _REQUIRED:
                 self.fail(name, _REQUIRED, expected)
             return default
-        return self.data[name]
+        v = self.data[name]
+        if v is None:  # msgpack nil (control requests): never taken as "absent"
+            self.fail(name, None, expected)
+        return v
 
     def number(self, name, default=_REQUIRED, low=None, high=None, low_open=False, unit=""):
         expected = _range_text("a number", low, high, low_open, unit)
@@ -210,6 +214,7 @@ class PublishConfig:
 @dataclass(frozen=True)
 class ControlConfig:
     endpoint: str = DEFAULT_CONTROL
+    max_block_share: float = cost.DEFAULT_MAX_BLOCK_SHARE
 
 
 @dataclass(frozen=True)
@@ -421,6 +426,7 @@ def _beams(t: _Table, fs: float):
         if hi < lo:
             s.fail("to_deg", hi, f"a number >= from_deg ({lo:g})")
         s.done()
+        _admit_count(t, kind, dirs.fan_count(lo, hi, step))  # counted from the ranges before any is built
         power = dirs.fan(lo, hi, step, el)
     elif kind == "grid":
         s = t.table("grid")
@@ -433,11 +439,11 @@ def _beams(t: _Table, fs: float):
         if e[1] < e[0]:
             s.fail("el_to_deg", e[1], f"a number >= el_from_deg ({e[0]:g})")
         s.done()
+        _admit_count(t, kind, dirs.fan_count(*a, a_step) * dirs.fan_count(*e, e_step))
         power = dirs.grid(a[0], a[1], a_step, e[0], e[1], e_step)
     else:
         power = np.array(_directions(t, "directions_deg", allow_empty=False))
-    if len(power) > 20000:
-        t.fail(kind, f"{len(power)} beams", "at most 20000 power beams")
+        _admit_count(t, kind, len(power))
     shading = t.string("shading", "uniform", SHADINGS)
     sidelobe = t.number("sidelobe_db", 30.0, low=10.0, high=120.0, unit="dB")
     nbar = t.integer("nbar", 4, low=1, high=20)
@@ -449,12 +455,18 @@ def _beams(t: _Table, fs: float):
         bands = [_band(t, "band_hz", fs)]
     transition = t.number("transition_hz", None, low=fs / 10000.0, high=fs / 4, unit="Hz")
     audio = _directions(t, "audio_deg", allow_empty=True, default=[])
-    if len(audio) > 64:
-        t.fail("audio_deg", f"{len(audio)} directions", "at most 64 audio directions")
+    _admit_count(t, "audio_deg", 0, len(audio))
     batch = t.integer("power_batch_blocks", 1, low=1, high=16)
     t.done()
     return BeamSet(power, np.array(audio).reshape(-1, 2), shading, sidelobe, nbar, tuple(bands),
                    transition), batch
+
+
+def _admit_count(t: _Table, name: str, n_power: int, n_audio: int = 0) -> None:
+    try:
+        cost.check_counts(n_power, n_audio)
+    except cost.AdmissionError as exc:
+        t.fail(name, f"{n_power or n_audio} directions", str(exc))
 
 
 def parse_beams(data: dict, where: str, key: str, samplerate_hz: float):
@@ -485,8 +497,9 @@ def _publish(t: _Table) -> PublishConfig:
 
 def _control(t: _Table) -> ControlConfig:
     ep = t.string("endpoint", DEFAULT_CONTROL)
+    share = t.number("max_block_share", cost.DEFAULT_MAX_BLOCK_SHARE, low=0.0, high=1.0, low_open=True)
     t.done()
-    return ControlConfig(ep)
+    return ControlConfig(ep, share)
 
 
 def _record(t: _Table) -> RecordConfig:

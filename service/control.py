@@ -14,6 +14,7 @@ with ``set``), ``record`` (``action``: start | stop | status) and ``mark``.
 from __future__ import annotations
 
 import logging
+import math
 import threading
 
 import zmq
@@ -22,15 +23,45 @@ from beamtap.client.protocol import MAX_REQUEST_BYTES, ProtocolError, pack, unpa
 from beamtap.errors import ConfigError, UsageError
 
 from . import config as cfg
+from .engine.cost import AdmissionError
 from .publisher import bind
 
 log = logging.getLogger("beamtap.control")
 
 COMMANDS = ("ping", "status", "config", "beams", "record", "mark")
+#: The keys each command takes.
+_KEYS = {"ping": {"cmd"}, "status": {"cmd"}, "config": {"cmd"}, "beams": {"cmd", "set"},
+         "record": {"cmd", "action", "what", "label"}, "mark": {"cmd", "text"}}
+#: Deepest nesting a request may have (the deepest real one, a grid in ``set``, has 3 levels).
+_MAX_DEPTH = 8
 
 
 class RequestError(Exception):
     """A bad request; the message goes back to the client."""
+
+
+def _refuse_missing_values(req: dict) -> None:
+    """Refuse nil, NaN and infinities anywhere in a request, naming the key.
+
+    msgpack nil must never read as "key absent" (that would silently keep a
+    default) and a non-finite number must never reach arithmetic.
+    """
+    stack = [(v, k, 1) for k, v in req.items()]
+    while stack:
+        value, where, depth = stack.pop()
+        if depth > _MAX_DEPTH:
+            raise RequestError(f"{where}: nested deeper than {_MAX_DEPTH} levels")
+        if value is None:
+            raise RequestError(f"{where}: nil is not a value; leave the key out to keep its current value")
+        if isinstance(value, float) and not math.isfinite(value):
+            raise RequestError(f"{where}: {value!r} is not a finite number")
+        if isinstance(value, dict):
+            for k, v in value.items():
+                if not isinstance(k, str):
+                    raise RequestError(f"{where}: key {k!r} is not a string")
+                stack.append((v, f"{where}.{k}", depth + 1))
+        elif isinstance(value, list):
+            stack.extend((v, f"{where}[{i}]", depth + 1) for i, v in enumerate(value))
 
 
 def beams_as_request(beams) -> dict:
@@ -81,6 +112,8 @@ class ControlServer:
         self.service = service
         self._ctx = context or zmq.Context.instance()
         self._sock = self._ctx.socket(zmq.REP)
+        # A larger message is never read: ZeroMQ drops the connection that sends it.
+        self._sock.setsockopt(zmq.MAXMSGSIZE, MAX_REQUEST_BYTES)
         self.endpoint = bind(self._sock, endpoint, "control")
         self._stop = threading.Event()
         self._thread = None
@@ -128,6 +161,11 @@ class ControlServer:
                 raise RequestError(f"'cmd' must be a string, one of {', '.join(COMMANDS)}; got {cmd!r}")
             if cmd not in COMMANDS:
                 raise RequestError(f"unknown cmd {cmd!r}; expected one of {', '.join(COMMANDS)}")
+            unknown = sorted(set(req) - _KEYS[cmd])
+            if unknown:
+                raise RequestError(f"unknown key {unknown[0]!r} in {cmd} request; expected "
+                                   f"{', '.join(repr(k) for k in sorted(_KEYS[cmd] - {'cmd'})) or 'no other keys'}")
+            _refuse_missing_values(req)
             result = getattr(self, f"_cmd_{cmd}")(req)
             return {"ok": True, "cmd": cmd, **result}
         except RequestError as exc:
@@ -157,9 +195,6 @@ class ControlServer:
 
     def _cmd_beams(self, req):
         p = self.service.pipeline
-        unknown = set(req) - {"cmd", "set"}
-        if unknown:
-            raise RequestError(f"unknown key {sorted(unknown)[0]!r} in beams request; expected 'set'")
         if "set" not in req:
             return {"beams": beams_as_request(p.engine.beams), "table": p.beam_table}
         change = req["set"]
@@ -172,11 +207,16 @@ class ControlServer:
         beams, batch = cfg.parse_beams(merged, "beams request", "set", p.samplerate_hz)
         if batch != p.engine.power_batch_blocks:
             raise RequestError("set.power_batch_blocks cannot change while running")
+        try:  # priced from counts and ranges before any steering is built
+            estimate = self.service.cost.admit(beams)
+        except AdmissionError as exc:
+            raise RequestError(f"beams refused: {exc}") from None
         try:
             table_id = p.request_retarget(beams)
         except Exception as exc:
             raise RequestError(f"beams not applied: {exc}") from None
-        return {"beam_table": table_id, "beams": beams_as_request(beams)}
+        return {"beam_table": table_id, "beams": beams_as_request(beams), "estimate": estimate.describe(),
+                "block_share": estimate.share}
 
     def _recorder(self):
         rec = getattr(self.service, "recorder", None)
@@ -189,10 +229,9 @@ class ControlServer:
         if action not in ("start", "stop", "status"):
             raise RequestError(f"record action {action!r}; expected start, stop or status")
         rec = self._recorder()
+        if action != "start" and set(req) - {"cmd", "action"}:
+            raise RequestError(f"unknown key {sorted(set(req) - {'cmd', 'action'})[0]!r} in record {action}")
         if action == "start":
-            unknown = set(req) - {"cmd", "action", "what", "label"}
-            if unknown:
-                raise RequestError(f"unknown key {sorted(unknown)[0]!r} in record start")
             what = req.get("what")
             if what is not None and (not isinstance(what, list) or not what
                                      or any(w not in cfg.RECORD_KINDS for w in what)):

@@ -18,7 +18,7 @@ from beamtap import __version__
 from beamtap.errors import UsageError
 
 from .config import Config
-from .engine import diagnostics
+from .engine import cost, diagnostics
 from .engine.beamformer import Beamformer
 from .engine.directions import fan, unit_vectors
 from .engine.scene import Scene
@@ -34,6 +34,15 @@ def make_beamformer(config: Config, beams=None) -> Beamformer:
                           config.input.block_frames, beams or config.beams, config.power_batch_blocks)
     except ValueError as exc:
         raise UsageError(f"{config.where}: [beams] {exc}") from None
+
+
+def cost_model(config: Config, engine: Beamformer) -> cost.CostModel:
+    """The admission check's time formula for this array, calibrated once on ``engine`` (which is
+    reset to sample 0 afterwards)."""
+    inp = config.input
+    base = cost.model_for(config.geometry, config.sound_speed_mps, inp.samplerate_hz, inp.block_frames,
+                          config.control.max_block_share)
+    return cost.calibrate(base, engine, engine.beams)
 
 
 def make_scene(config: Config) -> Scene:
@@ -101,7 +110,13 @@ def _effective_bandwidths(bf: Beamformer):
 
 
 def check_text(config: Config) -> str:
-    s = summary(config)
+    engine = make_beamformer(config)
+    s = summary(config, engine)
+    model = cost_model(config, engine)
+    try:
+        s["cost"] = model.admit(config.beams).describe() + f"; accepted live (limit {model.max_block_share:g})"
+    except cost.AdmissionError as exc:
+        s["cost"] = f"the live service would refuse these beams: {exc}"
     line = config.geometry.kind == "line"
     lines = [
         f"config        {config.where}",
@@ -121,6 +136,7 @@ def check_text(config: Config) -> str:
         f"beamwidth     {s['beamwidth_deg']:.2f}° (-3 dB, azimuth) at {s['beamwidth_at_hz']:g} Hz, "
         f"look {s['beamwidth_look_deg'][0]:g}°/{s['beamwidth_look_deg'][1]:g}°",
         f"engine        FFT frames of {s['fft_size']}, steering data {s['steering_mb']:.1f} MB",
+        f"live cost     {s['cost']}",
     ]
     if line:
         lines.append("note          a line array cannot tell a bearing from its mirror image about its axis")

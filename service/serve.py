@@ -19,7 +19,11 @@ from dataclasses import replace
 
 import zmq
 
+from beamtap.errors import UsageError
+
 from .config import Config
+from .engine.cost import AdmissionError
+from .offline import cost_model
 from .control import ControlServer
 from .pipeline import Pipeline
 from .publisher import Publisher
@@ -49,6 +53,7 @@ class Service:
         self.control = None
         self.pipeline = None
         self.recorder = None
+        self.cost = None
 
     def start(self) -> None:
         cfg = self.config
@@ -61,6 +66,12 @@ class Service:
         self.publisher = Publisher(cfg.publish.endpoint, self.stream_id, cfg.publish.send_queue, self.context)
         self.recorder = Recorder(cfg, self)
         self.pipeline = Pipeline(cfg, self.source, self.publisher, self.recorder)
+        # The one admission check: calibrated once here, then the same answer for the same request.
+        self.cost = cost_model(cfg, self.pipeline.engine)
+        try:
+            start_cost = self.cost.admit(cfg.beams)
+        except AdmissionError as exc:
+            raise UsageError(f"{cfg.where}: [beams] refused for live use: {exc}") from None
         self.control = ControlServer(cfg.control.endpoint, self, self.context)
         s = self.pipeline.array_summary()
         log.info("publishing on %s (topics power, audio%s, status, beams); control on %s",
@@ -70,6 +81,7 @@ class Service:
         log.info("array: %s, %d of %d sensors active, aperture %.3f m, sound speed %.2f m/s (%s)",
                  s["array_kind"], s["active_sensors"], s["sensors"], s["aperture_m"], s["sound_speed_mps"],
                  s["sound_speed_from"])
+        log.info("cost: %s (admission limit %g of the block)", start_cost.describe(), self.cost.max_block_share)
         log.info("beams: %d power, %d audio; bulk delay D = %d samples (%.3f ms); latency budget block + D = "
                  "%.2f ms", s["power_beams"], s["audio_beams"], s["bulk_delay_samples"], s["bulk_delay_ms"],
                  s["latency_budget_ms"])

@@ -75,6 +75,13 @@ def default_transition_hz(band_hz, samplerate_hz: float) -> float:
     return float(min(max(0.5 * (high - low), samplerate_hz / 1000.0), room))
 
 
+def band_filter_taps(transition_hz: float, samplerate_hz: float) -> int:
+    """Length of a band filter with transitions ``transition_hz`` wide (odd: linear phase type I,
+    whole-sample delay), from Kaiser's (1974) length formula for :data:`STOPBAND_DB`."""
+    numtaps = int(np.ceil((STOPBAND_DB - 7.95) / (14.36 * transition_hz / samplerate_hz))) + 1
+    return numtaps + (numtaps + 1) % 2
+
+
 def design_band_filter(band_hz, samplerate_hz: float, transition_hz: float | None = None) -> BandFilter:
     """Design the band-pass FIR of one band.
 
@@ -96,8 +103,7 @@ def design_band_filter(band_hz, samplerate_hz: float, transition_hz: float | Non
     if not 0.0 < low < high < nyq:
         raise ValueError(f"band_hz={band_hz!r}: expected 0 < low < high < {nyq:g} Hz")
     tw = default_transition_hz((low, high), samplerate_hz) if transition_hz is None else float(transition_hz)
-    numtaps = int(np.ceil((STOPBAND_DB - 7.95) / (14.36 * tw / samplerate_hz))) + 1
-    numtaps += (numtaps + 1) % 2  # odd length: linear phase type I, whole-sample delay
+    numtaps = band_filter_taps(tw, samplerate_hz)
     if low - tw / 2.0 <= 0.0 or high + tw / 2.0 >= nyq:
         raise ValueError(f"band_hz={band_hz!r} with transition_hz={tw:g}: the transitions must fit between "
                          f"0 and {nyq:g} Hz")

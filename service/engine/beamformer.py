@@ -28,10 +28,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import bandpower, shading, steering
+from . import bandpower, cost, shading, steering
 from .directions import unit_vectors
 from .geometry import ArrayGeometry
-from .transform import ColumnFFT, fast_length, irfft_columns
+from .transform import ColumnFFT, irfft_columns
 
 try:  # the compiled inner loops (service/engine/_kernels.c); numpy forms the same sums without them
     from . import _kernels
@@ -44,8 +44,6 @@ COMPILED_AVAILABLE = _kernels is not None
 
 #: Default audio crossfade after a retarget, seconds.
 CROSSFADE_S = 0.010
-#: Steering data larger than this is refused (beams × sensors × bins × 8 bytes).
-MAX_STEERING_BYTES = 512 * 2**20
 #: Largest audio beams × sensors product formed element-wise rather than by matrix products.
 _ELEMENTWISE_MAX = 128
 #: Fewest sensors for which the mirror-pair rows pay for their extra pass over each block.
@@ -211,11 +209,6 @@ class _Steering:
         self.k1 = min(int(ev.bins[0]) for ev in self.bands)
         self.k2 = max(int(ev.bins[-1]) for ev in self.bands)
         power_bins = np.arange(self.k1, self.k2 + 1)
-        need = 8 * pos.shape[0] * (len(beams.power_deg) * len(power_bins) + len(beams.audio_deg) * (n_fft // 2 + 1))
-        if need > MAX_STEERING_BYTES:
-            raise ValueError(f"{len(beams.power_deg)} power beams and {len(beams.audio_deg)} audio beams over "
-                             f"{pos.shape[0]} sensors need {need / 2**20:.0f} MB of steering data, more than "
-                             f"{MAX_STEERING_BYTES / 2**20:.0f} MB: use fewer beams or a narrower band")
 
         def product(directions_deg, bins):
             units = unit_vectors(directions_deg[:, 0], directions_deg[:, 1])
@@ -384,11 +377,6 @@ def _paired(h: np.ndarray, pairs, bulk_delay: int, n_fft: int, bins: np.ndarray)
     return np.ascontiguousarray(np.concatenate([q.real, q.imag[:, :, pa != pb]], axis=2), dtype=np.float32)
 
 
-def max_band_filter_taps(beams: BeamSet, samplerate_hz: float) -> int:
-    return max(len(bandpower.design_band_filter(b, samplerate_hz, beams.transition_hz).taps)
-               for b in beams.bands_hz)
-
-
 class Beamformer:
     """Causal multi-beam delay-and-sum over blocks of float32 samples.
 
@@ -459,17 +447,16 @@ class Beamformer:
         self.reset(0)
 
     # ---- set-up -------------------------------------------------------
-    def _fft_size_for(self, beams: BeamSet) -> int:
-        need = (self.block_frames + steering.filter_span_samples(self.bulk_delay_samples)
-                + max_band_filter_taps(beams, self.samplerate_hz) - 2)
-        return fast_length(need)
-
     def prepare(self, beams: BeamSet) -> _Steering:
         """Build steering data for a new beam set (may run on another thread)."""
         return self._build(beams)
 
     def _build(self, beams: BeamSet) -> _Steering:
-        n_fft = self._fft_size_for(beams)
+        # Priced from counts and ranges before anything is built; over the memory ceiling it is refused.
+        _, work_bytes, n_fft = cost.block_work(
+            self._basis.n_rows, len(beams.power_deg), len(beams.audio_deg), beams.bands_hz, beams.transition_hz,
+            self.samplerate_hz, self.block_frames, self.bulk_delay_samples)
+        cost.check_memory(work_bytes, len(beams.power_deg), len(beams.audio_deg), self._basis.n_rows)
         return _Steering(self.geometry, self._basis, self.sound_speed_mps, self.samplerate_hz,
                          self.bulk_delay_samples, n_fft, self.block_frames, beams, self.compiled), n_fft
 

@@ -28,6 +28,11 @@ def unit_vectors(azimuth_deg, elevation_deg) -> np.ndarray:
     return np.stack([np.cos(el) * np.cos(az), np.cos(el) * np.sin(az), np.sin(el)], axis=-1)
 
 
+def fan_count(from_deg: float, to_deg: float, step_deg: float) -> int:
+    """How many directions :func:`fan` gives, without building them (both ends included)."""
+    return int(np.floor((to_deg - from_deg) / step_deg + 1e-9)) + 1
+
+
 def fan(from_deg: float, to_deg: float, step_deg: float, elevation_deg: float = 0.0) -> np.ndarray:
     """Azimuth fan at one elevation, both ends included.
 
@@ -36,7 +41,7 @@ def fan(from_deg: float, to_deg: float, step_deg: float, elevation_deg: float = 
     ndarray, shape (n, 2)
         Rows of (azimuth_deg, elevation_deg).
     """
-    n = int(np.floor((to_deg - from_deg) / step_deg + 1e-9)) + 1
+    n = fan_count(from_deg, to_deg, step_deg)
     az = from_deg + step_deg * np.arange(n)
     return np.column_stack([az, np.full(n, float(elevation_deg))])
 

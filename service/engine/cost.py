@@ -1,0 +1,222 @@
+"""What a beam set costs, and the one admission check every part calls.
+
+Before anything is built, a beam set is priced from its counts and ranges:
+how many directions (:func:`check_counts`, from the fan or grid ranges
+alone), how much memory its steering and band evaluators take, and how long
+one block takes to beamform (:class:`CostModel`). The live service refuses a
+beam set whose estimate exceeds ``[control] max_block_share`` of the block
+duration, with the estimate in the reply, so no client can push it into
+losing input; ``beamtap check`` prints the same estimate; the engine refuses
+beam sets over the memory ceiling through :func:`check_memory`. Later stages
+(threads, adaptive beams, detection) add their terms here.
+
+The time estimate is one deterministic formula over sensors (history rows),
+beams, frequency bins and bands. Its per-unit constants below were timed
+piece by piece on the 2-core machine of 2026-12-03 for the 64-sensor, 181 +
+8 beam case (see DEVELOPERS.md); one scale factor, measured once at start-up
+by :func:`calibrate` on this machine and this array, adapts them to the host
+and the code path (compiled or numpy). After that the same request always
+gets the same answer, whatever the momentary load.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass
+
+import numpy as np
+
+from . import bandpower, steering
+from .transform import fast_length
+
+#: Most power beams one beam set may have, whatever the array.
+MAX_POWER_BEAMS = 20000
+#: Most audio beams one beam set may have.
+MAX_AUDIO_BEAMS = 64
+#: Most memory one beam set's steering and band evaluators may take, bytes.
+MAX_WORK_BYTES = 512 * 2**20
+#: Default share of the block duration a beam set's estimated processing may take.
+DEFAULT_MAX_BLOCK_SHARE = 0.7
+
+# Nanoseconds per unit of work, from the 2026-12-03 profile of one 64-sensor block (compiled path):
+# channel FFTs 0.22 ms / (64 rows x 2560 x log2 2560), history write 0.06 ms / (64 x 1024),
+# steered sums 0.08 ms / (8 x 64 x 1281) complex multiply-adds, quadratic form 0.07 ms /
+# (181 x 186 x 86), Python overhead about 0.03 ms a block.
+_NS_FFT = 0.12
+_NS_WRITE = 0.9
+_NS_STEER = 0.12
+_NS_QUAD = 0.025
+_NS_BLOCK = 30000.0
+# Steering data past what the caches hold streams from memory every block: about 16 GB/s here
+# (measured: 19,781 power beams over 16 sensors, 157 MB, took 15.6 ms a block against 11.5 ms
+# from the terms above). Cache size from memory, a typical last-level share of a server core pair.
+_NS_STREAM_BYTE = 0.06
+_CACHE_BYTES = 8 * 2**20
+
+
+class AdmissionError(ValueError):
+    """A beam set refused by the admission check; the message carries the estimate."""
+
+
+@dataclass(frozen=True)
+class BlockCost:
+    """The price of one beam set on one array.
+
+    Attributes
+    ----------
+    work_ns : float
+        Formula cost of one block before calibration, ns.
+    estimate_s : float
+        Calibrated estimate of one block's processing time, seconds.
+    block_s : float
+        Block duration, seconds.
+    work_bytes : int
+        Memory of the steering data and band evaluators, bytes.
+    n_fft : int
+        Frame length the beam set needs.
+    """
+
+    work_ns: float
+    estimate_s: float
+    block_s: float
+    work_bytes: int
+    n_fft: int
+
+    @property
+    def share(self) -> float:
+        """Estimated share of the block duration."""
+        return self.estimate_s / self.block_s
+
+    def describe(self) -> str:
+        return (f"estimated {1e3 * self.estimate_s:.2f} ms per block of {1e3 * self.block_s:.2f} ms "
+                f"({100 * self.share:.0f} % of real time), {self.work_bytes / 2**20:.1f} MB of steering data")
+
+
+def check_counts(n_power: int, n_audio: int) -> None:
+    """Refuse beam counts over the hard ceilings (call before building any directions)."""
+    if n_power > MAX_POWER_BEAMS:
+        raise AdmissionError(f"at most {MAX_POWER_BEAMS} power beams")
+    if n_audio > MAX_AUDIO_BEAMS:
+        raise AdmissionError(f"at most {MAX_AUDIO_BEAMS} audio beams")
+
+
+def band_transition_hz(band_hz, transition_hz, samplerate_hz) -> float:
+    return bandpower.default_transition_hz(band_hz, samplerate_hz) if transition_hz is None else float(transition_hz)
+
+
+def frame_length(block_frames: int, bulk_delay: int, bands_hz, transition_hz, samplerate_hz: float) -> int:
+    """FFT frame length N >= block + 2D + 1 + band filter - 2 (see :mod:`.beamformer`)."""
+    taps = max(bandpower.band_filter_taps(band_transition_hz(b, transition_hz, samplerate_hz), samplerate_hz)
+               for b in bands_hz)
+    return fast_length(block_frames + steering.filter_span_samples(bulk_delay) + taps - 2)
+
+
+def _band_bins(band_hz, tw: float, n_fft: int, samplerate_hz: float) -> int:
+    # The evaluator keeps the bins where the filter is above -80 dB: the pass band and one
+    # transition's width around it (each transition is centred on its edge), plus rounding.
+    return int(math.ceil((band_hz[1] - band_hz[0] + tw) * n_fft / samplerate_hz)) + 4
+
+
+def block_work(rows: int, n_power: int, n_audio: int, bands_hz, transition_hz, samplerate_hz: float,
+               block_frames: int, bulk_delay: int) -> tuple:
+    """(formula ns per block, work bytes, n_fft) of a beam set, from counts and ranges only."""
+    n_fft = frame_length(block_frames, bulk_delay, bands_hz, transition_hz, samplerate_hz)
+    half = n_fft // 2 + 1
+    log_n = math.log2(n_fft)
+    tws = [band_transition_hz(b, transition_hz, samplerate_hz) for b in bands_hz]
+    bins = [min(_band_bins(b, tw, n_fft, samplerate_hz), half) for b, tw in zip(bands_hz, tws)]
+    lo = min(b[0] - tw / 2 for b, tw in zip(bands_hz, tws))
+    hi = max(b[1] + tw / 2 for b, tw in zip(bands_hz, tws))
+    span = min(int(math.ceil((hi - lo) * n_fft / samplerate_hz)) + 4, half)
+    cols = [min(block_frames, 2 * k) for k in bins]
+    ns = (_NS_FFT * rows * n_fft * log_n + _NS_WRITE * rows * block_frames
+          + _NS_STEER * n_audio * rows * half + _NS_FFT * n_audio * n_fft * log_n
+          + _NS_STEER * n_power * rows * span + _NS_QUAD * n_power * sum(2 * k * c for k, c in zip(bins, cols))
+          + _NS_BLOCK)
+    steering_bytes = 8 * rows * (n_power * span + n_audio * half)
+    ns += _NS_STREAM_BYTE * max(0, steering_bytes - _CACHE_BYTES)
+    # Each band evaluator's set-up: a (block, 2 bins) matrix and its (2 bins)^2 Gram matrix, float64.
+    evaluator_bytes = sum(8 * (block_frames * 2 * k + 4 * k * k) for k in bins)
+    return ns, steering_bytes + evaluator_bytes, n_fft
+
+
+def check_memory(work_bytes: int, n_power: int, n_audio: int, rows: int) -> None:
+    """Refuse a beam set whose steering data and band evaluators exceed :data:`MAX_WORK_BYTES`."""
+    if work_bytes > MAX_WORK_BYTES:
+        raise AdmissionError(f"{n_power} power beams and {n_audio} audio beams over {rows} sensors need "
+                             f"{work_bytes / 2**20:.0f} MB of steering data, more than "
+                             f"{MAX_WORK_BYTES / 2**20:.0f} MB: use fewer beams or a narrower band")
+
+
+@dataclass(frozen=True)
+class CostModel:
+    """The calibrated time formula for one array at one sample rate and block length.
+
+    Parameters
+    ----------
+    rows : int
+        History rows (active sensors).
+    samplerate_hz : float
+    block_frames : int
+    bulk_delay : int
+        Bulk delay D, samples.
+    scale : float
+        Measured time / formula time on this host (1.0: the reference machine).
+    max_block_share : float
+        Share of the block duration above which :meth:`admit` refuses.
+    """
+
+    rows: int
+    samplerate_hz: float
+    block_frames: int
+    bulk_delay: int
+    scale: float = 1.0
+    max_block_share: float = DEFAULT_MAX_BLOCK_SHARE
+
+    def price(self, beams) -> BlockCost:
+        """The :class:`BlockCost` of a :class:`~.beamformer.BeamSet` (nothing is built)."""
+        ns, nbytes, n_fft = block_work(self.rows, len(beams.power_deg), len(beams.audio_deg), beams.bands_hz,
+                                       beams.transition_hz, self.samplerate_hz, self.block_frames,
+                                       self.bulk_delay)
+        return BlockCost(ns, self.scale * ns * 1e-9, self.block_frames / self.samplerate_hz, nbytes, n_fft)
+
+    def admit(self, beams, realtime: bool = True) -> BlockCost:
+        """Price ``beams`` and refuse it (:class:`AdmissionError`) over the memory ceiling or, when
+        ``realtime``, over ``max_block_share`` of the block duration."""
+        check_counts(len(beams.power_deg), len(beams.audio_deg))
+        cost = self.price(beams)
+        check_memory(cost.work_bytes, len(beams.power_deg), len(beams.audio_deg), self.rows)
+        if realtime and cost.share > self.max_block_share:
+            raise AdmissionError(f"{cost.describe()}: above max_block_share = {self.max_block_share:g}; "
+                                 "use fewer beams, fewer audio beams or narrower bands")
+        return cost
+
+
+def model_for(geometry, sound_speed_mps: float, samplerate_hz: float, block_frames: int,
+              max_block_share: float = DEFAULT_MAX_BLOCK_SHARE) -> CostModel:
+    """An uncalibrated model (scale 1) for an array."""
+    bulk = steering.bulk_delay_samples(geometry.max_steering_delay_s(sound_speed_mps), samplerate_hz)
+    return CostModel(int(np.count_nonzero(geometry.active)), float(samplerate_hz), int(block_frames), bulk,
+                     1.0, max_block_share)
+
+
+def calibrate(model: CostModel, engine, beams, blocks: int = 24) -> CostModel:
+    """The model with its scale measured once: ``engine`` (a :class:`~.beamformer.Beamformer` of
+    this array forming ``beams``; reset to sample 0 afterwards) beamforms ``blocks`` blocks of noise;
+    the median block time over the formula's time for ``beams`` gives the scale, kept within
+    0.25–20 so one disturbed start-up cannot make the model absurd."""
+    rng = np.random.default_rng(0)
+    x = (0.01 * rng.standard_normal((model.block_frames, engine.geometry.n_input_channels))).astype(np.float32)
+    for _ in range(4):  # warm caches and the allocator
+        engine.process(x)
+    times = []
+    for _ in range(blocks):
+        t0 = time.perf_counter()
+        engine.process(x)
+        times.append(time.perf_counter() - t0)
+    engine.reset(0)  # the engine starts its stream afresh, as if the measurement never happened
+    formula_s = model.price(beams).work_ns * 1e-9
+    scale = float(np.median(times)) / formula_s
+    return CostModel(model.rows, model.samplerate_hz, model.block_frames, model.bulk_delay,
+                     min(max(scale, 0.25), 20.0), model.max_block_share)
