@@ -238,7 +238,7 @@ class Pipeline:
         dc = self._cpu_durations[:n] if n else np.zeros(1)
         src = self.source.stats()
         out = {
-            "state": "running" if not self._stop.is_set() else "stopping",
+            "state": "failed" if self.source.error else "running" if not self._stop.is_set() else "stopping",
             "source": self.source.describe(),
             "source_error": self.source.error,
             "source_finished": self.source.finished.is_set(),
@@ -251,6 +251,7 @@ class Pipeline:
             "overflows": src["input_overflows"] + src["ring_overflows"],
             "gaps": self.counts["gaps"],
             "frames_lost": src["frames_lost"],
+            "source_rejected": src.get("rejected", {}),
             "nan_samples": self.counts["nan_samples"],
             "clipped_samples": self.counts["clipped_samples"],
             "block_ms_p50": 1e3 * float(np.percentile(d, 50)),

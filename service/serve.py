@@ -145,8 +145,12 @@ def run(config: Config, builtin: bool, publish: str | None = None, control: str 
         while not stop.wait(0.2):
             if deadline is not None and time.monotonic() >= deadline:
                 break
+            # A part that cannot go on ends the service, so a supervisor restarts it.
             if service.pipeline.stopped.is_set():
-                log.error("processing thread stopped unexpectedly")
+                log.error("processing thread stopped unexpectedly; exiting so a supervisor can restart the service")
+                return 1
+            if service.source.error:
+                log.error("%s; exiting so a supervisor can restart the service", service.source.error)
                 return 1
     finally:
         service.stop()

@@ -16,6 +16,7 @@ float32 frames shaped (frames, input channels) and keeps a
 from __future__ import annotations
 
 import logging
+import math
 import threading
 import time
 from pathlib import Path
@@ -269,12 +270,13 @@ class SoundcardSource(Source):
             self.sd.check_input_settings(device=self.device, channels=self.channels, dtype="float32",
                                          samplerate=self.samplerate_hz)
         except Exception as exc:
-            info = self.sd.query_devices(self.device)
+            info = _device_info(self.sd, self.device)
             raise UsageError(
                 f"[input] device = {device!r} ({info['name']}): cannot capture {self.channels} channels at "
                 f"{self.samplerate_hz:g} Hz ({exc}); it offers {info['max_input_channels']} input channels, "
                 f"default rate {info['default_samplerate']:g} Hz") from None
-        self.device_name = self.sd.query_devices(self.device)["name"]
+        self.device_name = _device_info(self.sd, self.device)["name"]
+        self._t0 = self._last_adc = None
         self._expected_adc = None
         self._stream = None
 
@@ -282,34 +284,66 @@ class SoundcardSource(Source):
         return f"sound card {self.device_name!r}"
 
     def _callback(self, indata, frames, t, status):
-        # Real-time thread: copy and note flags only.
+        # Real-time thread: copy, count and note flags only.
+        adc = t.inputBufferAdcTime
         if status.input_overflow:
             self.input_overflows += 1
-            if self._expected_adc is not None and t.inputBufferAdcTime > 0:
-                lost = int(round((t.inputBufferAdcTime - self._expected_adc) * self.samplerate_hz))
-                self.ring.lost(lost)
+            self.ring.lost(self._overflow_frames(adc, frames))
         self.ring.write(indata)
-        if t.inputBufferAdcTime > 0:
-            self._expected_adc = t.inputBufferAdcTime + frames / self.samplerate_hz
-            self._last_adc = (self.ring.next_stream_index - frames, t.inputBufferAdcTime)
+        if adc > 0:
+            self._expected_adc = adc + frames / self.samplerate_hz
+            self._last_adc = (self.ring.next_stream_index - frames, adc)
+
+    def _overflow_frames(self, adc: float, frames: int) -> int:
+        """Frames lost before this callback's buffer (an input overflow is always at least one frame).
+
+        With ADC timestamps: the time between the expected and the actual
+        first frame. Without them (some drivers give none): the frames the
+        callbacks delivered against the monotonic time since the first
+        callback, to the nearest whole buffer, since hosts lose whole buffers
+        and the callback's own arrival time jitters by up to one.
+        """
+        if self._expected_adc is not None and adc > 0:
+            return max(1, int(round((adc - self._expected_adc) * self.samplerate_hz)))
+        if self._t0 is None:
+            return frames
+        due = (time.monotonic() - self._t0) * self.samplerate_hz - frames  # this buffer's first frame
+        missing = due - self.ring.next_stream_index  # frames delivered and frames already counted lost
+        return max(frames, int(round(missing / frames)) * frames)
 
     def start(self):
         self._last_adc = None
+        self._t0 = None
         self._stream = self.sd.InputStream(device=self.device, channels=self.channels, dtype="float32",
                                            samplerate=self.samplerate_hz, blocksize=self.block_frames,
-                                           callback=self._callback)
+                                           callback=self._timed_callback, finished_callback=self._finished)
         self._offset = time.time() - self._stream.time  # PortAudio stream time to UTC
         self.clock = SampleClock(self.samplerate_hz, time.time())
         self._stream.start()
         self._thread = threading.Thread(target=self._watch_clock, name="beamtap-adc-clock", daemon=True)
         self._thread.start()
 
+    def _timed_callback(self, indata, frames, t, status):
+        if self._t0 is None:  # the arrival of the first buffer's last frame
+            self._t0 = time.monotonic() - frames / self.samplerate_hz
+        self._callback(indata, frames, t, status)
+
+    def _finished(self):
+        # PortAudio ended the stream (device unplugged, driver failure) without our asking.
+        if not self._stop.is_set():
+            self.error = f"sound card {self.device_name!r}: the input stream stopped"
+            self.finished.set()
+            self.ring.wake()
+
     def _watch_clock(self):
-        # Feed ADC timestamps to the sample clock outside the callback.
+        # Feed ADC timestamps to the sample clock outside the callback; notice a stream that died.
         while not self._stop.wait(0.5):
             last = self._last_adc
             if last is not None:
                 self.clock.observe(last[0], last[1] + self._offset)
+            if not self._stream.active and not self._stop.is_set() and self.error is None:
+                self.error = f"sound card {self.device_name!r}: the input stream is no longer active"
+                self.finished.set()
 
     def stop(self):
         self._stop.set()
@@ -319,8 +353,20 @@ class SoundcardSource(Source):
         super().stop()
 
 
-def _find_device(sd, device):
+def _device_info(sd, device) -> dict:
+    """The device's info; ``None`` is PortAudio's default input device (``query_devices(None)`` would
+    list every device instead)."""
     if device is None:
+        try:
+            return sd.query_devices(kind="input")
+        except Exception as exc:
+            raise UsageError(f"[input] device: there is no default input device ({exc}); name one, see "
+                             "'beamtap devices'") from None
+    return sd.query_devices(device)
+
+
+def _find_device(sd, device):
+    if device is None or device == "":
         return None
     if isinstance(device, int):
         try:
@@ -338,11 +384,27 @@ def _find_device(sd, device):
     return matches[0]
 
 
+#: Most frames one upstream ``raw`` message may carry (the config's largest block).
+MAX_STREAM_FRAMES = 65536
+#: Largest first_sample accepted from upstream (far beyond any real stream: 3e6 years at 48 kHz).
+MAX_FIRST_SAMPLE = 2**62
+#: How far an upstream stream may run ahead of real time since its first message, seconds.
+STREAM_AHEAD_S = 10.0
+
+
 class StreamSource(Source):
     """The ``raw`` topic of another beamtap service.
 
-    A jump in the upstream ``first_sample`` or sequence number (a dropped
-    message, a restarted upstream) becomes a gap here too.
+    Every message is checked before use: an integer ``first_sample`` in
+    0..2**62, strictly after the previous message's frames and not further
+    ahead of real time than the time that passed (plus
+    :data:`STREAM_AHEAD_S`); a finite ``time_utc``; float32 little-endian
+    samples shaped (frames, channels) with at least the array's channels
+    and at most :data:`MAX_STREAM_FRAMES` frames. A bad message is dropped
+    and counted by reason (``rejected`` in the status) and never moves the
+    sample counter. A forward jump in ``first_sample`` (messages lost
+    upstream or on the way) or a new upstream ``stream`` id (a restart) is a
+    flagged gap here too.
     """
 
     kind = "stream"
@@ -351,50 +413,94 @@ class StreamSource(Source):
         super().__init__(channels, samplerate_hz, ring_frames)
         self.endpoint = endpoint
         self.upstream_gaps = 0
+        self.rejected: dict[str, int] = {}
+        self._expect = None  # upstream first_sample of the next message
+        self._stream_id = None
+        self._origin = None  # (upstream first_sample, monotonic time) of the stream's first message
+        self._next_warning = 0.0
 
     def describe(self) -> str:
         return f"raw stream from {self.endpoint}"
 
+    def stats(self) -> dict:
+        return dict(super().stats(), rejected=dict(self.rejected), upstream_gaps=self.upstream_gaps)
+
     def _run(self):
         import zmq  # noqa: PLC0415
-
-        from beamtap.client.protocol import ProtocolError, decode  # noqa: PLC0415
 
         ctx = zmq.Context.instance()
         with ctx.socket(zmq.SUB) as sock:
             sock.setsockopt(zmq.RCVHWM, 1000)
             sock.setsockopt(zmq.LINGER, 0)
+            # A message larger than twice the largest block this source accepts is never read.
+            sock.setsockopt(zmq.MAXMSGSIZE, 2 * max(self.channels, 64) * MAX_STREAM_FRAMES * 4 + 65536)
             sock.connect(self.endpoint)
             sock.setsockopt(zmq.SUBSCRIBE, b"raw")
-            expect = None
-            stream_id = None
             while not self._stop.is_set():
                 if not sock.poll(200):
                     continue
                 try:
-                    _, header, data = decode(sock.recv_multipart(copy=False))
-                except ProtocolError as exc:
-                    log.warning("stream source: bad message from %s: %s", self.endpoint, exc)
+                    frames = sock.recv_multipart(copy=False)
+                except zmq.ZMQError:
                     continue
-                if data is None or data.ndim != 2 or data.shape[1] < self.channels:
-                    log.warning("stream source: raw message with shape %s, need %d channels",
-                                None if data is None else data.shape, self.channels)
-                    continue
-                first = int(header["first_sample"])
-                if stream_id is None:
-                    stream_id = header.get("stream")
-                    self.clock = SampleClock(self.samplerate_hz, float(header["time_utc"]))
-                    expect = first
-                if header.get("stream") != stream_id:  # upstream restarted: loss of unknown length
-                    stream_id = header.get("stream")
-                    self.upstream_gaps += 1
-                    self.ring.lost(1)
-                    expect = first
-                elif first != expect:
-                    self.upstream_gaps += 1
-                    self.ring.lost(max(first - expect, 1))
-                expect = first + len(data)
-                self.ring.write(data[:, : self.channels])
+                try:
+                    self.accept(frames)
+                except Exception as exc:  # noqa: BLE001 - no message may stop the source
+                    self._reject(f"internal error ({type(exc).__name__})", str(exc))
+
+    def accept(self, frames) -> bool:
+        """Check one upstream message and, if good, put its frames in the ring; False if rejected."""
+        from beamtap.client.protocol import ProtocolError, decode  # noqa: PLC0415
+
+        try:
+            topic, header, data = decode(frames)
+        except ProtocolError as exc:
+            return self._reject("malformed", str(exc))
+        if topic != "raw":
+            return self._reject("wrong topic", repr(topic))
+        first, utc = header.get("first_sample"), header.get("time_utc")
+        if isinstance(first, bool) or not isinstance(first, int) or not 0 <= first <= MAX_FIRST_SAMPLE:
+            return self._reject("bad first_sample", f"first_sample = {first!r}, expected a whole number "
+                                "from 0 to 2**62")
+        if isinstance(utc, bool) or not isinstance(utc, (int, float)) or not math.isfinite(utc) or utc <= 0:
+            return self._reject("bad time_utc", f"time_utc = {utc!r}, expected a finite positive number")
+        if data is None or header.get("dtype") != "<f4":
+            return self._reject("bad dtype", f"dtype = {header.get('dtype')!r}, expected '<f4' (float32)")
+        if data.ndim != 2 or not 1 <= data.shape[0] <= MAX_STREAM_FRAMES or data.shape[1] < self.channels:
+            return self._reject("bad shape", f"shape {list(data.shape)}, expected (1..{MAX_STREAM_FRAMES} frames, "
+                                f">= {self.channels} channels)")
+        stream_id = header.get("stream")
+        now = time.monotonic()
+        if self._expect is None or stream_id != self._stream_id:
+            if self._expect is not None:  # upstream restarted: a loss of unknown length
+                self.upstream_gaps += 1
+                self.ring.lost(1)
+                log.warning("stream source: upstream %s restarted (stream %r); gap flagged", self.endpoint, stream_id)
+            else:
+                self.clock = SampleClock(self.samplerate_hz, float(utc))
+            self._stream_id, self._expect, self._origin = stream_id, first, (first, now)
+        if first < self._expect:
+            return self._reject("repeated or backward", f"first_sample {first} before {self._expect}")
+        ahead = (first - self._origin[0]) / self.samplerate_hz - (now - self._origin[1])
+        if ahead > STREAM_AHEAD_S:
+            return self._reject("ahead of real time", f"first_sample {first} is {ahead:.1f} s ahead of the "
+                                "time since the stream began")
+        if first > self._expect:
+            self.upstream_gaps += 1
+            self.ring.lost(first - self._expect)
+        self._expect = first + len(data)
+        self.ring.write(data[:, : self.channels])
+        return True
+
+    def _reject(self, reason: str, detail: str) -> bool:
+        # Counted every time; logged at most once a second with the latest detail.
+        self.rejected[reason] = self.rejected.get(reason, 0) + 1
+        now = time.monotonic()
+        if now >= self._next_warning:
+            log.warning("stream source: message from %s dropped (%s): %s; %d dropped so far", self.endpoint,
+                        reason, detail, sum(self.rejected.values()))
+            self._next_warning = now + 1.0
+        return False
 
 
 class SessionSource(Source):
