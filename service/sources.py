@@ -147,7 +147,9 @@ class SimulatedSource(Source):
                 block = np.frombuffer(msg, np.float32).reshape(self.block_frames, self.channels)
                 self._paced_write(block, start_monotonic, self.realtime)
         except EOFError:
-            pass
+            if not self._stop.is_set():  # the renderer went away without being asked to
+                self._proc.join(timeout=1.0)
+                raise RuntimeError(f"scene process ended (exit code {self._proc.exitcode})") from None
         finally:
             stop.set()
             receiver.close()

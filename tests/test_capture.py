@@ -82,6 +82,70 @@ def test_capture_from_virtual_alsa_card_points_at_the_plane_wave(tmp_path, virtu
 
 
 @pytest.mark.skipif(not _portaudio_available(), reason="needs libportaudio2 (installed by .ci/run)")
+@pytest.mark.parametrize("device_line", ["", 'device = ""'])
+def test_default_sound_card_when_no_device_is_named(tmp_path, virtual_card, device_line):
+    """`device` absent or empty: PortAudio's default input, here ALSA's `default` PCM declared as the
+    virtual card."""
+    home = virtual_card["HOME"]
+    rc = open(f"{home}/.asoundrc").read()
+    open(f"{home}/.asoundrc", "w").write(rc + "\npcm.!default {\n    type plug\n    slave.pcm \"arraycap\"\n}\n")
+    cfg = soundcard_config("arraycap").replace('device = "arraycap"', device_line)
+    with running_service(tmp_path, cfg, env=virtual_card) as svc:
+        with Subscriber(svc.publish, topics=["power", "beams"], timeout_s=20) as sub:
+            frames = collect_power(sub, 30)
+        with Controller(svc.control) as ctl:
+            st = ctl.status()
+    assert st["source"].startswith("sound card") and st["state"] == "running"
+    beams = sub.beams["power_deg"]
+    peaks = [beams[int(np.argmax(f.data[0]))][0] for f in frames[3:]]
+    assert np.median(peaks) == pytest.approx(BEARING, abs=1.0)
+
+
+@pytest.mark.skipif(not _portaudio_available(), reason="needs libportaudio2 (installed by .ci/run)")
+def test_input_overflow_without_adc_time_is_a_gap_of_the_lost_length(virtual_card):
+    """The callback as PortAudio calls it, on a real source for the virtual card (in a child process
+    whose HOME holds the card): an overflow whose time info carries no ADC timestamp (some drivers
+    give none) still becomes a gap, sized by the frames the callbacks delivered against the time
+    that passed (the monotonic clock is stepped by the script, so the sizes are exact)."""
+    import json
+    import os
+    import subprocess
+    import sys
+
+    r = subprocess.run([sys.executable, "-c", _OVERFLOW_SCRIPT.format(ch=N_CH, fs=FS)], capture_output=True,
+                       text=True, timeout=60, env={**os.environ, **virtual_card})
+    assert r.returncode == 0, r.stderr
+    out = json.loads(r.stdout)
+    assert out["overflows"] == 2
+    assert out["first"] == [0, 1024, 2048, 3072, 4096, 8 * 1024, 9 * 1024 + out["gaps"][1]]
+    assert out["gaps"][0] == 3 * 1024  # three buffers lost
+    assert out["gaps"][1] >= 1  # an overflow with no measurable loss is still a gap, never glued
+
+
+_OVERFLOW_SCRIPT = """
+import json, types
+import numpy as np
+import beamtap.service.sources as sources
+clock = {{"now": 100.0}}
+sources.time.monotonic = lambda: clock["now"]
+src = sources.SoundcardSource("arraycap", {ch}, {fs}, 1024, 48000)
+no_time = types.SimpleNamespace(inputBufferAdcTime=0.0, currentTime=0.0)
+ok, overflow = types.SimpleNamespace(input_overflow=False), types.SimpleNamespace(input_overflow=True)
+block = np.zeros((1024, {ch}), np.float32)
+for i in range(5):
+    clock["now"] = 100.0 + (i + 1) * 1024 / {fs}
+    src._timed_callback(block, 1024, no_time, ok)
+clock["now"] = 100.0 + 9 * 1024 / {fs}  # three buffers lost, then this one arrives
+src._timed_callback(block, 1024, no_time, overflow)
+clock["now"] += 1024 / {fs}
+src._timed_callback(block, 1024, no_time, overflow)  # on time, flagged anyway
+chunks = [src.ring.read(1024, timeout=0) for _ in range(7)]
+print(json.dumps({{"overflows": src.input_overflows, "first": [c.first_sample for c in chunks],
+                  "gaps": [c.gap_frames for c in chunks if c.gap_frames]}}))
+"""
+
+
+@pytest.mark.skipif(not _portaudio_available(), reason="needs libportaudio2 (installed by .ci/run)")
 def test_unknown_capture_device_is_a_one_line_error(tmp_path, virtual_card):
     import subprocess
     import sys

@@ -1,5 +1,7 @@
 """The live service as a subprocess, with real ZeroMQ sockets on loopback."""
 
+import os
+import signal
 import time
 
 import numpy as np
@@ -230,3 +232,29 @@ def test_status_topic_reports_counters(line_service):
     assert st["frames_captured"] > 0 and st["block_ms_p50"] > 0
     # a thread's CPU time within a block cannot exceed the wall time of that block (1 µs of clock rounding)
     assert 0 < st["block_cpu_ms_p50"] <= st["block_ms_p50"] + 1e-3
+
+
+def _children(pid):
+    out = []
+    for tid in os.listdir(f"/proc/{pid}/task"):
+        out += [int(c) for c in open(f"/proc/{pid}/task/{tid}/children").read().split()]
+    return out
+
+
+def test_dead_scene_renderer_ends_the_service_with_a_failure_status(tmp_path):
+    """A part that cannot go on ends the service (non-zero exit, reason logged) within 2 s, so
+    systemd's Restart=on-failure brings it back; checked with a generous 10 s margin here."""
+    with running_service(tmp_path, scene_config(), expect_rc=None) as svc:
+        # the scene renderer: the spawned child (the other child is multiprocessing's resource tracker)
+        with Subscriber(svc.publish, topics=["power"], timeout_s=20) as sub:
+            sub.recv()  # rendering has begun, so the renderer exists
+        kids = [k for k in _children(svc.proc.pid) if b"spawn_main" in open(f"/proc/{k}/cmdline", "rb").read()]
+        assert len(kids) == 1
+        os.kill(kids[0], signal.SIGKILL)
+        t0 = time.monotonic()
+        rc = svc.proc.wait(timeout=30)
+        took = time.monotonic() - t0
+    assert rc == 1
+    assert took < 10.0
+    log = svc.log()
+    assert "scene process ended" in log and "exiting so a supervisor can restart" in log
