@@ -16,12 +16,19 @@ closing record adds ``frames``), ``gap``, ``mark``, ``error`` and
 ``stop``. Every segment is contiguous in stream samples; a loss starts a
 new segment.
 
-Crash safety: WAV headers are rewritten and files fsynced every
-``flush_s`` (one second by default), and every manifest line is fsynced
-when written, so a power cut loses at most the last second of the open
-segments; the files stay readable by any WAV reader. A segment with a
-``segment_open`` record but no ``segment`` record was open at the crash;
-its length is whatever its (valid) header says.
+Crash safety: every write reaches the kernel as it is made (no user-space
+buffers), WAV headers are rewritten every :data:`HEADER_S` (a quarter
+second) and files fsynced every ``flush_s`` (one second by default), and
+every manifest line is written with one write call and fsynced, so a
+killed process loses at most the last quarter second of the open segments
+and a power cut at most the last second; the files stay readable by any WAV
+reader. A segment with a ``segment_open`` record but no ``segment`` record
+was open at the crash; its length is whatever its (valid) header says.
+
+Full disk: a manifest line, a power row or a block of WAV frames that does
+not fit whole is cut back to the last whole one before the error is raised,
+so every file still parses (no half line, no half row, no stray bytes after
+a WAV's data).
 
 Used by the service's recorder and by the standalone ``beamtap record``;
 needs only numpy and the standard library.
@@ -29,8 +36,8 @@ needs only numpy and the standard library.
 
 from __future__ import annotations
 
-import csv
 import datetime as dt
+import errno
 import json
 import os
 import socket
@@ -47,6 +54,44 @@ KINDS = ("raw", "audio", "power")
 FORMAT_VERSION = 1
 #: Keep every WAV segment well below the 4 GiB RIFF limit.
 MAX_SEGMENT_BYTES = 2**31
+#: Interval of WAV header rewrites, seconds: what a killed process can lose of an open segment.
+HEADER_S = 0.25
+
+
+class WholeRecordFile:
+    """A file appended to in whole records (manifest lines, CSV rows).
+
+    Each record is one ``write`` call on an ``O_APPEND`` descriptor; a
+    record that does not fit whole (full disk, file-size limit) is cut back
+    to the last whole one and the error re-raised, so the file always ends
+    at a record boundary.
+    """
+
+    def __init__(self, path):
+        self.path = str(path)
+        self._fd = os.open(self.path, os.O_WRONLY | os.O_CREAT | os.O_APPEND, 0o644)
+        self.size = os.fstat(self._fd).st_size
+
+    def append(self, data: bytes) -> None:
+        try:
+            n = os.write(self._fd, data)
+            if n != len(data):
+                raise OSError(errno.ENOSPC, f"{self.path}: only {n} of {len(data)} bytes written")
+        except OSError:
+            try:
+                os.ftruncate(self._fd, self.size)
+            except OSError:
+                pass
+            raise
+        self.size += n
+
+    def sync(self) -> None:
+        os.fsync(self._fd)
+
+    def close(self) -> None:
+        if self._fd >= 0:
+            os.close(self._fd)
+            self._fd = -1
 
 
 def iso(utc: float) -> str:
@@ -85,10 +130,10 @@ class SessionWriter:
         self.sample_format = sample_format
         self.flush_s = flush_s
         self.power_block_frames = int(power_block_frames)
-        self._manifest = open(self.folder / MANIFEST, "a", encoding="utf-8")
+        self._manifest = WholeRecordFile(self.folder / MANIFEST)
         self._open: dict = {}  # kind -> dict(writer, record, next_sample, ...)
         self._counter = {k: 0 for k in KINDS}
-        self._last_flush = time.monotonic()
+        self._last_flush = self._last_header = time.monotonic()
         self.beam_table_id = None
         self.frames_written = {k: 0 for k in KINDS}
         self.segments_closed = 0
@@ -101,9 +146,8 @@ class SessionWriter:
     # ---- manifest ---------------------------------------------------------
     def record(self, type_: str, **fields) -> dict:
         rec = {"type": type_, **fields}
-        self._manifest.write(json.dumps(rec, default=json_default) + "\n")
-        self._manifest.flush()
-        os.fsync(self._manifest.fileno())
+        self._manifest.append((json.dumps(rec, default=json_default) + "\n").encode())
+        self._manifest.sync()
         return rec
 
     def beams(self, table: dict) -> None:
@@ -162,14 +206,12 @@ class SessionWriter:
     def _new_segment(self, kind, first_sample, channels, utc, gap):
         self._counter[kind] += 1
         width = 4 if self.sample_format == "float32" else 3
-        if 44 + self.segment_frames * channels * width > MAX_SEGMENT_BYTES:
+        if kind != "power" and 44 + self.segment_frames * channels * width > MAX_SEGMENT_BYTES:
             raise ValueError(f"segment_s gives {self.segment_frames * channels * width / 2**30:.1f} GiB "
                              f"segments of {channels} channels; keep segments under 2 GiB")
         if kind == "power":
             name = f"power-{self._counter[kind]:06d}.csv"
-            f = open(self.folder / name, "w", newline="", encoding="utf-8")
-            writer = csv.writer(f)
-            seg = {"file": f, "csv": writer, "frames": 0, "rows": 0}
+            seg = {"file": WholeRecordFile(self.folder / name), "frames": 0, "rows": 0}
         else:
             name = f"{kind}-{self._counter[kind]:06d}.wav"
             seg = {"writer": WavWriter(self.folder / name, self.fs, channels, self.sample_format), "frames": 0}
@@ -185,10 +227,11 @@ class SessionWriter:
     def _write_power(self, first_sample, rows, utc_first):
         rows = np.asarray(rows, np.float32)
         seg = self._segment_for("power", first_sample, rows.size, utc_first)
-        if seg["rows"] == 0:
-            seg["csv"].writerow(["first_sample", "time_utc"] + [f"band{b}_beam{i}" for b in range(rows.shape[0])
-                                                                for i in range(rows.shape[1])])
-        seg["csv"].writerow([int(first_sample), f"{utc_first:.6f}"] + [f"{v:.3f}" for v in rows.ravel()])
+        if seg["file"].size == 0:
+            seg["file"].append((",".join(["first_sample", "time_utc"] + [
+                f"band{b}_beam{i}" for b in range(rows.shape[0]) for i in range(rows.shape[1])]) + "\n").encode())
+        seg["file"].append((",".join([str(int(first_sample)), f"{utc_first:.6f}"] + [f"{v:.3f}" for v in rows.ravel()])
+                            + "\n").encode())
         seg["rows"] += 1
         seg["frames"] += self.power_block_frames
         seg["next"] = int(first_sample) + self.power_block_frames
@@ -199,14 +242,16 @@ class SessionWriter:
     # ---- housekeeping -----------------------------------------------------------
     def _maybe_flush(self, force=False):
         now = time.monotonic()
-        if force or now - self._last_flush >= self.flush_s:
+        sync = force or now - self._last_flush >= self.flush_s
+        if sync or now - self._last_header >= HEADER_S:
             for seg in self._open.values():
                 if "writer" in seg:
-                    seg["writer"].flush(sync=True)
-                else:
-                    seg["file"].flush()
-                    os.fsync(seg["file"].fileno())
-            self._last_flush = now
+                    seg["writer"].flush(sync=sync)
+                elif sync:
+                    seg["file"].sync()
+            self._last_header = now
+            if sync:
+                self._last_flush = now
 
     def _close(self, kind):
         seg = self._open.pop(kind)
@@ -214,9 +259,10 @@ class SessionWriter:
             seg["writer"].close()
             frames = seg["frames"]
         else:
-            seg["file"].flush()
-            os.fsync(seg["file"].fileno())
-            seg["file"].close()
+            try:
+                seg["file"].sync()
+            finally:
+                seg["file"].close()
             frames = seg["rows"]
         rec = dict(seg["record"], closed_utc=time.time())
         rec["frames" if kind != "power" else "rows"] = int(frames)
@@ -230,9 +276,11 @@ class SessionWriter:
             except OSError:
                 pass
         now = time.time()
-        self.record("stop", stopped_utc=now, stopped_iso=iso(now), reason=reason,
-                    frames_written=self.frames_written)
-        self._manifest.close()
+        try:
+            self.record("stop", stopped_utc=now, stopped_iso=iso(now), reason=reason,
+                        frames_written=self.frames_written)
+        finally:
+            self._manifest.close()
 
     @property
     def open_segments(self) -> int:

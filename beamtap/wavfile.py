@@ -14,6 +14,7 @@ Microsoft/IBM, "Multimedia Programming Interface and Data Specifications
 
 from __future__ import annotations
 
+import errno
 import os
 import struct
 
@@ -155,17 +156,19 @@ class WavWriter:
         self._width = 4 if sample_format == "float32" else 3
         self.frames = 0
         try:
-            self._f = open(self.path, "wb")
+            # Unbuffered: every write reaches the kernel whole or is cut back (see write), so a
+            # killed process leaves nothing in a user-space buffer and a full disk no stray bytes.
+            self._f = open(self.path, "wb", buffering=0)
         except OSError as exc:
             raise UsageError(f"{self.path}: cannot write: {exc.strerror}") from None
         tag = IEEE_FLOAT if sample_format == "float32" else PCM
         align = self.channels * self._width
         # fmt chunk of 18 bytes (cbSize = 0) for float, 16 for PCM; a fact chunk is not needed by readers.
-        self._f.write(b"RIFF" + struct.pack("<I", 0) + b"WAVE")
-        self._f.write(b"fmt " + struct.pack("<IHHIIHH", 16, tag, self.channels, self.samplerate_hz,
-                                            self.samplerate_hz * align, align, 8 * self._width))
-        self._f.write(b"data" + struct.pack("<I", 0))
-        self._data_start = self._f.tell()
+        self._data_start = 44
+        self._write_whole(b"RIFF" + struct.pack("<I", 0) + b"WAVE"
+                          + b"fmt " + struct.pack("<IHHIIHH", 16, tag, self.channels, self.samplerate_hz,
+                                                  self.samplerate_hz * align, align, 8 * self._width)
+                          + b"data" + struct.pack("<I", 0), 0)
         self._update_header()
 
     @property
@@ -180,22 +183,38 @@ class WavWriter:
         else:
             v = np.clip(np.round(block.astype(np.float64) * (1 << 23)), -(1 << 23), (1 << 23) - 1).astype("<i4")
             data = v.view(np.uint8).reshape(-1, 4)[:, :3].tobytes()
-        self._f.write(data)
+        self._write_whole(data, self.bytes_written)
         self.frames += len(block)
 
+    def _write_whole(self, data: bytes, good_size: int) -> None:
+        """Append ``data`` entirely, or cut the file back to ``good_size`` bytes (the header and the
+        whole frames before it, kept consistent) and re-raise: a full disk leaves a valid file."""
+        view = memoryview(data)
+        try:
+            while len(view):
+                n = self._f.write(view)
+                if not n:
+                    raise OSError(errno.ENOSPC, "no space left on device")
+                view = view[n:]
+        except OSError:
+            try:
+                os.ftruncate(self._f.fileno(), good_size)
+                self._f.seek(good_size)
+                if good_size >= self._data_start:
+                    self._update_header()
+            except OSError:
+                pass  # nothing more can be done; the caller reports the first error
+            raise
+
     def _update_header(self):
-        end = self._f.tell()
+        # Overwrites bytes that exist already: needs no new space, so it works on a full disk too.
         data_bytes = self.frames * self.channels * self._width
-        self._f.seek(4)
-        self._f.write(struct.pack("<I", self._data_start - 8 + data_bytes))
-        self._f.seek(self._data_start - 4)
-        self._f.write(struct.pack("<I", data_bytes))
-        self._f.seek(end)
+        os.pwrite(self._f.fileno(), struct.pack("<I", self._data_start - 8 + data_bytes), 4)
+        os.pwrite(self._f.fileno(), struct.pack("<I", data_bytes), self._data_start - 4)
 
     def flush(self, sync: bool = False) -> None:
         """Make the header match the data written so far and push to the OS (and disk if ``sync``)."""
         self._update_header()
-        self._f.flush()
         if sync:
             os.fsync(self._f.fileno())
 
