@@ -24,6 +24,8 @@ PROTOCOL_VERSION = 1
 TOPICS = ("power", "audio", "raw", "status", "beams")
 #: Largest control request accepted, bytes (a 20,000-direction list is about 360 kB of msgpack).
 MAX_REQUEST_BYTES = 512 * 1024
+#: Largest message part a client reads (a raw block of 64 channels x 65536 frames is 16 MiB).
+MAX_MESSAGE_BYTES = 64 * 2**20
 
 
 class ProtocolError(ValueError):

@@ -106,6 +106,7 @@ class Subscriber:
         self._sock = self._ctx.socket(zmq.SUB)
         self._sock.setsockopt(zmq.RCVHWM, int(queue))
         self._sock.setsockopt(zmq.LINGER, 0)
+        self._sock.setsockopt(zmq.MAXMSGSIZE, protocol.MAX_MESSAGE_BYTES)
         _connect(self._sock, endpoint)
         for t in topics:
             self._sock.setsockopt(zmq.SUBSCRIBE, t.encode())
@@ -201,6 +202,7 @@ class Controller:
         if self._sock is None:
             self._sock = self._ctx.socket(zmq.REQ)
             self._sock.setsockopt(zmq.LINGER, 0)
+            self._sock.setsockopt(zmq.MAXMSGSIZE, protocol.MAX_MESSAGE_BYTES)
             _connect(self._sock, self.endpoint)
         return self._sock
 

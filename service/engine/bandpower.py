@@ -149,9 +149,18 @@ class BandPowerEvaluator:
         w = np.empty((valid, 2 * len(self.bins)))
         w[:, 0::2] = (2.0 / n_fft) * (np.cos(theta) * gk.real - np.sin(theta) * gk.imag)
         w[:, 1::2] = (2.0 / n_fft) * (-np.cos(theta) * gk.imag - np.sin(theta) * gk.real)
-        lam, vec = np.linalg.eigh(w.T @ w / valid)
-        big = lam > lam.max() * 1e-12
-        self.factor = np.ascontiguousarray(vec[:, big] * np.sqrt(lam[big]), dtype=np.float32)
+        if w.shape[1] <= valid:
+            lam, vec = np.linalg.eigh(w.T @ w / valid)
+            big = lam > lam.max() * 1e-12
+            factor = vec[:, big] * np.sqrt(lam[big])
+        else:
+            # Wide bands: the same factor from the smaller Gram matrix of the rows. With W = U S V^T,
+            # W^T W / valid = V (S^2 / valid) V^T, and V S = W^T U, so the factor is W^T U / sqrt(valid):
+            # (valid)^2 x columns work instead of columns^3 (Golub & Van Loan 2013, §8.6, from memory).
+            lam, vec = np.linalg.eigh(w @ w.T)
+            big = lam > lam.max() * 1e-12
+            factor = w.T @ vec[:, big] / np.sqrt(valid)
+        self.factor = np.ascontiguousarray(factor, dtype=np.float32)
 
     def delayed(self, lag_samples: int) -> "BandPowerEvaluator":
         """The evaluator for spectra that lack a delay of ``lag_samples``.
