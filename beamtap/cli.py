@@ -160,7 +160,7 @@ def cmd_record(args):
     from beamtap.client import record  # noqa: PLC0415
 
     return record.run(args.endpoint, args.out, args.what, args.segment_s, args.sample_format, args.seconds,
-                      args.label)
+                      args.label, args.idle_s, args.keep_going)
 
 
 def cmd_mark(args):
@@ -284,6 +284,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--sample-format", default="float32", choices=["float32", "int24"])
     p.add_argument("--label", default="", help="a label stored in the manifest")
     p.add_argument("--seconds", type=float, default=None, help="stop after this many seconds")
+    p.add_argument("--idle-s", type=float, default=5.0,
+                   help="warn (and note it in the manifest) after this many seconds without data (default 5)")
+    p.add_argument("--continue", dest="keep_going", action="store_true",
+                   help="when the service restarts, go on in the same session (default: start a new one)")
 
     p = _add(sub, "mark", cmd_mark, "add a timestamped event mark to the service's recording")
     p.add_argument("text", nargs="+", help="the mark, e.g. 'run 3 starts'")

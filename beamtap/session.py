@@ -234,6 +234,7 @@ class SessionWriter:
                             + "\n").encode())
         seg["rows"] += 1
         seg["frames"] += self.power_block_frames
+        self.frames_written["power"] += self.power_block_frames  # input frames the rows cover
         seg["next"] = int(first_sample) + self.power_block_frames
         if seg["frames"] >= self.segment_frames:
             self._close("power")

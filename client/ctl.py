@@ -58,8 +58,8 @@ def run(args) -> int:
             text = _status_text(reply["status"])
         elif args.what == "config":
             reply = ctl.request("config")
-            text = reply["text"].rstrip() + "\n\n# beams in force (table %d):\n%s" % (
-                reply["beam_table"], reply["beams_toml"])
+            text = (f"# config of the running service ({reply['where']}), with the beams in force "
+                    f"(table {reply['beam_table']})\n" + reply["document"])
         elif args.what == "beams":
             change = beams_change(args)
             reply = ctl.request("beams", set=change) if change else ctl.request("beams")

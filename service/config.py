@@ -8,7 +8,9 @@ one line and exits with status 2.
 from __future__ import annotations
 
 import hashlib
+import json
 import math
+import os
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -219,7 +221,7 @@ class ControlConfig:
 
 @dataclass(frozen=True)
 class RecordConfig:
-    folder: str = "recordings"
+    folder: str = field(default_factory=lambda: default_record_folder())
     kinds: tuple = ("raw",)
     segment_s: float = 60.0
     sample_format: str = "float32"
@@ -250,6 +252,69 @@ class Config:
     @property
     def sha256(self) -> str:
         return hashlib.sha256(self.text.encode()).hexdigest()
+
+
+def dumps(data: dict) -> str:
+    """A TOML document from a map of plain values (what :func:`loads` reads back to the same map).
+
+    Scalars and lists of scalars are written inline, maps as ``[tables]``, lists of maps as
+    ``[[arrays of tables]]``; maps inside lists as inline tables.
+    """
+    out: list[str] = []
+
+    def section(path: list, table: dict, array: bool = False) -> None:
+        plain = {k: v for k, v in table.items() if not _is_table(v) and not _is_table_array(v)}
+        if path:
+            name = ".".join(_toml_key(p) for p in path)
+            out.append(f"[[{name}]]" if array else f"[{name}]")
+        out.extend(f"{_toml_key(k)} = {_toml_value(v)}" for k, v in plain.items())
+        for k, v in table.items():
+            if _is_table(v):
+                section(path + [k], v)
+            elif _is_table_array(v):
+                for item in v:
+                    section(path + [k], item, array=True)
+        if plain or path:
+            out.append("")
+
+    section([], data)
+    return "\n".join(out).rstrip() + "\n"
+
+
+def _is_table(v) -> bool:
+    return isinstance(v, dict)
+
+
+def _is_table_array(v) -> bool:
+    return isinstance(v, list) and bool(v) and all(isinstance(e, dict) for e in v)
+
+
+def _toml_key(k: str) -> str:
+    return k if k and all(c.isalnum() or c in "_-" for c in k) and k.isascii() else _toml_value(str(k))
+
+
+def _toml_value(v) -> str:
+    if isinstance(v, str):
+        return json.dumps(v)  # a JSON string is a valid TOML basic string
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, dict):
+        return "{ " + ", ".join(f"{_toml_key(k)} = {_toml_value(e)}" for k, e in v.items()) + " }"
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_toml_value(e) for e in v) + "]"
+    if isinstance(v, float):
+        return repr(v) if math.isfinite(v) else ("nan" if v != v else "inf" if v > 0 else "-inf")
+    return str(int(v))
+
+
+def with_beams(text: str, beams: dict, where: str = "<config>") -> str:
+    """Config ``text`` with its ``[beams]`` replaced by ``beams`` (a map of ``[beams]`` keys), as one
+    TOML document; comments are not kept. Checked by loading it back."""
+    data = tomllib.loads(text)
+    data["beams"] = beams
+    out = dumps(data)
+    loads(out, where)
+    return out
 
 
 def load(path) -> Config:
@@ -502,8 +567,22 @@ def _control(t: _Table) -> ControlConfig:
     return ControlConfig(ep, share)
 
 
+def default_record_folder() -> str:
+    """``$XDG_DATA_HOME/beamtap/recordings`` (``~/.local/share/beamtap/recordings`` when unset): never a
+    folder relative to wherever the service happened to be started."""
+    base = os.environ.get("XDG_DATA_HOME") or os.path.join(os.path.expanduser("~"), ".local", "share")
+    return os.path.abspath(os.path.join(base, "beamtap", "recordings"))
+
+
 def _record(t: _Table) -> RecordConfig:
-    folder = t.string("folder", "recordings")
+    folder = t.string("folder", None)
+    if folder is None:
+        folder = default_record_folder()
+    elif not os.path.isabs(os.path.expanduser(folder)):
+        # relative to the config file, like any path a file names
+        folder = os.path.join(os.path.dirname(os.path.abspath(t.where)) if os.path.isfile(t.where) else os.getcwd(),
+                              folder)
+    folder = os.path.abspath(os.path.expanduser(folder))
     kinds = t.raw("what", ["raw"], f"a list drawn from {', '.join(RECORD_KINDS)}")
     if not isinstance(kinds, list) or not kinds or any(k not in RECORD_KINDS for k in kinds):
         t.fail("what", kinds, f"a non-empty list drawn from {', '.join(RECORD_KINDS)}")

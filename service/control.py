@@ -79,25 +79,6 @@ def beams_as_request(beams) -> dict:
     return out
 
 
-def beams_toml(beams) -> str:
-    """The beam set as a ``[beams]`` TOML section."""
-    req = beams_as_request(beams)
-    lines = ["[beams]"]
-    for key, value in req.items():
-        lines.append(f"{key} = {_toml_value(value)}")
-    return "\n".join(lines) + "\n"
-
-
-def _toml_value(v):
-    if isinstance(v, str):
-        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, (list, tuple)):
-        return "[" + ", ".join(_toml_value(e) for e in v) + "]"
-    return repr(float(v)) if isinstance(v, float) else str(v)
-
-
 class ControlServer:
     """REP socket serving control requests in a thread.
 
@@ -190,8 +171,10 @@ class ControlServer:
 
     def _cmd_config(self, req):
         p = self.service.pipeline
+        beams = dict(beams_as_request(p.engine.beams), power_batch_blocks=p.engine.power_batch_blocks)
         return {"text": self.service.config.text, "where": self.service.config.where,
-                "beams_toml": beams_toml(p.engine.beams), "beam_table": p.beam_table_id}
+                "document": cfg.with_beams(self.service.config.text, beams, self.service.config.where),
+                "beam_table": p.beam_table_id}
 
     def _cmd_beams(self, req):
         p = self.service.pipeline

@@ -267,6 +267,8 @@ class Pipeline:
             "latency_budget_ms": 1e3 * (self.block_frames + self.bulk_delay) / self.samplerate_hz,
             "clock": self.source.clock.as_dict(),
             "beam_table": self.beam_table_id,
+            "publishing": ["power"] + (["audio"] if len(self.engine.beams.audio_deg) else [])
+            + (["raw"] if self.config.publish.raw else []),
         }
         if self.recorder is not None:
             out["record"] = self.recorder.status()

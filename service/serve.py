@@ -81,6 +81,7 @@ class Service:
         log.info("array: %s, %d of %d sensors active, aperture %.3f m, sound speed %.2f m/s (%s)",
                  s["array_kind"], s["active_sensors"], s["sensors"], s["aperture_m"], s["sound_speed_mps"],
                  s["sound_speed_from"])
+        log.info("recordings go to %s (one session folder per recording)", cfg.record.folder)
         log.info("cost: %s (admission limit %g of the block)", start_cost.describe(), self.cost.max_block_share)
         log.info("beams: %d power, %d audio; bulk delay D = %d samples (%.3f ms); latency budget block + D = "
                  "%.2f ms", s["power_beams"], s["audio_beams"], s["bulk_delay_samples"], s["bulk_delay_ms"],
@@ -154,6 +155,11 @@ def run(config: Config, builtin: bool, publish: str | None = None, control: str 
                 return 1
     finally:
         service.stop()
+        if ready_file:
+            try:
+                os.unlink(ready_file)  # a stale ready file would tell a supervisor the service is up
+            except OSError:
+                pass
     log.info("stopped")
     return 0
 

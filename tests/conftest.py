@@ -110,6 +110,8 @@ def running_service(tmp_path, config_text=None, extra_args=(), env=None, expect_
         stop(proc)
     if expect_rc is not None:
         assert proc.returncode == expect_rc, open(log_path).read()
+    if expect_rc == 0:
+        assert not ready.exists(), "the service left its ready file behind"
 
 
 def line_config(count=16, spacing_m=0.5, samplerate_hz=48000, block_frames=1024, source="simulated",

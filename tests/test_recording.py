@@ -254,3 +254,79 @@ def test_standalone_record_from_the_stream_and_sigterm_closes_the_session(tmp_pa
     last = read_manifest(local)[-1]
     assert last["type"] == "stop" and last["reason"] == "service stopped"
     assert all(s["closed"] for s in segments(local, "raw"))
+
+
+def _free_port_endpoint():
+    import zmq
+
+    with zmq.Context.instance().socket(zmq.PUB) as s:
+        s.bind("tcp://127.0.0.1:*")
+        return s.getsockopt(zmq.LAST_ENDPOINT).decode()
+
+
+def _wait_for(predicate, timeout_s=30):
+    end = time.monotonic() + timeout_s
+    while not predicate():
+        assert time.monotonic() < end, "condition not reached"
+        time.sleep(0.05)  # polling files another process writes
+
+
+def test_record_notices_a_restarted_service_and_a_silent_one(tmp_path):
+    """Two services one after the other on the same port: the recorder warns when data stops,
+    notes it in the manifest, and records the second service into a new session of its own."""
+    endpoint = _free_port_endpoint()
+    out = tmp_path / "trial"
+    (tmp_path / "a").mkdir()
+    (tmp_path / "b").mkdir()
+    cfg = config(tmp_path / "unused")
+    proc = subprocess.Popen([sys.executable, "-m", "beamtap", "record", "--endpoint", endpoint, "--out", str(out),
+                             "--what", "power", "--idle-s", "1"], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True)
+    try:
+        with running_service(tmp_path / "a", cfg, publish=endpoint):
+            _wait_for(lambda: (out / "manifest.jsonl").exists() and segments(out, "power"))
+        _wait_for(lambda: any(r["type"] == "idle" for r in read_manifest(out)))  # the silence is noted
+        with running_service(tmp_path / "b", cfg, publish=endpoint):
+            second = tmp_path / "trial-2"
+            _wait_for(lambda: (second / "manifest.jsonl").exists() and segments(second, "power"))
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        stdout, stderr = proc.communicate(timeout=30)
+    assert proc.returncode == 0, stderr
+    assert "no data from" in stderr and "starting a new session" in stderr
+    assert "recording power from" in stderr  # the start line
+    first_recs, second_recs = read_manifest(out), read_manifest(second)
+    assert first_recs[0]["stream"] != second_recs[0]["stream"]
+    assert any(r["type"] == "idle" for r in first_recs)
+    assert first_recs[-1]["type"] == "stop" and first_recs[-1]["reason"] == "upstream restarted"
+    assert first_recs[-1]["frames_written"]["power"] > 0  # power counted like every kind
+    assert str(out) in stdout and str(second) in stdout
+
+
+def test_record_refuses_a_kind_the_service_does_not_publish(tmp_path):
+    cfg = config(tmp_path / "unused").replace("[publish]\nraw = true\n", "")
+    with running_service(tmp_path, cfg) as svc:
+        r = subprocess.run([sys.executable, "-m", "beamtap", "record", "--endpoint", svc.publish, "--out",
+                            str(tmp_path / "x"), "--what", "raw", "power", "--seconds", "20"],
+                           capture_output=True, text=True, timeout=60)
+    assert r.returncode == 2
+    assert "does not publish raw" in r.stderr and "Traceback" not in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1
+
+
+def test_default_record_folder_is_absolute_under_the_data_home(tmp_path):
+    """No [record] folder: sessions go to $XDG_DATA_HOME/beamtap/recordings (XDG Base Directory
+    Specification 0.8: ~/.local/share when XDG_DATA_HOME is unset), whatever the working directory."""
+    home = tmp_path / "home"
+    home.mkdir()
+    cfg = line_config(count=8, samplerate_hz=FS, block_frames=BLOCK)
+    env = {"HOME": str(home), "XDG_DATA_HOME": ""}
+    with running_service(tmp_path, cfg, env=env) as svc:
+        with Controller(svc.control) as ctl:
+            st = ctl.record("start", what=["power"])
+            ctl.record("stop")
+        log = svc.log()
+    expected = home / ".local" / "share" / "beamtap" / "recordings"
+    assert st["session"].startswith(str(expected) + os.sep)
+    assert f"recordings go to {expected}" in log
+    assert read_manifest(st["session"])[0]["type"] == "session"

@@ -258,3 +258,29 @@ def test_dead_scene_renderer_ends_the_service_with_a_failure_status(tmp_path):
     assert took < 10.0
     log = svc.log()
     assert "scene process ended" in log and "exiting so a supervisor can restart" in log
+
+
+def test_ctl_config_is_one_document_that_checks_and_serves_the_same_beams(tmp_path):
+    """`ctl config` after a retarget: one TOML document (TOML 1.0: a table is declared once),
+    accepted by `check`, and a service started from it forms the same beams."""
+    import subprocess
+    import sys
+
+    with running_service(tmp_path, scene_config()) as svc:
+        with Controller(svc.control) as ctl:
+            ctl.beams(set={"fan": {"from_deg": 10.0, "to_deg": 170.0, "step_deg": 4.0},
+                           "audio_deg": [[75.0, 0.0]], "shading": "hann"})
+            before = ctl.beams()["beams"]
+        r = subprocess.run([sys.executable, "-m", "beamtap", "ctl", "--control", svc.control, "config"],
+                           capture_output=True, text=True, timeout=60)
+    assert r.returncode == 0, r.stderr
+    assert r.stdout.count("[beams]") == 1
+    doc = tmp_path / "again.toml"
+    doc.write_text(r.stdout)
+    chk = subprocess.run([sys.executable, "-m", "beamtap", "check", str(doc)], capture_output=True, text=True,
+                         timeout=60)
+    assert chk.returncode == 0, chk.stderr
+    with running_service(tmp_path, r.stdout) as again:
+        with Controller(again.control) as ctl:
+            after = ctl.beams()["beams"]
+    assert after == before
