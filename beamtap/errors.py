@@ -25,7 +25,8 @@ class ConfigError(UsageError):
 
     def __init__(self, where: str, key: str, problem: str):
         self.where, self.key, self.problem = where, key, problem
-        super().__init__(f"{where}: [{key}] {problem}")
+        # A problem with the file as a whole (unreadable, not TOML) has no key to show.
+        super().__init__(f"{where}: {problem}" if key == "(file)" else f"{where}: [{key}] {problem}")
 
 
 class MissingSystemLibrary(UsageError):

@@ -76,12 +76,19 @@ def from_live(endpoint: str, seconds: float, band: int = 0):
     return t - t[0], np.array(beams["power_deg"])[:, 0], data, title
 
 
+#: Picture formats by suffix, and the metadata key that carries the axes' layout in each.
+_FORMATS = {".png": "Description", ".svg": "Description", ".pdf": "Subject"}
+
+
 def render(times_s, bearings_deg, power_db, title: str, out, range_db: float = 30.0) -> dict:
     """Write the PNG; returns the plot area in pixels and the axes' data limits.
 
     The same dict is stored in the PNG's ``Description`` text so a program
     reading the image back can map pixels to bearing and time.
     """
+    suffix = Path(str(out)).suffix.lower()
+    if suffix not in _FORMATS:
+        raise UsageError(f"--out {out}: pictures are written as {', '.join(_FORMATS)} (chosen by the suffix)")
     try:
         import matplotlib  # noqa: PLC0415
 
@@ -109,7 +116,7 @@ def render(times_s, bearings_deg, power_db, title: str, out, range_db: float = 3
     info = {"axes_px": [bbox.x0, height - bbox.y1, bbox.x1, height - bbox.y0],
             "bearing_deg": [float(b[0]), float(b[-1])], "time_s": [float(times_s[0]), float(times_s[-1])]}
     try:
-        fig.savefig(out, metadata={"Description": json.dumps(info)})
+        fig.savefig(out, metadata={_FORMATS[suffix]: json.dumps(info)})
     except OSError as exc:
         raise UsageError(f"--out {out}: cannot write: {exc.strerror}") from None
     finally:

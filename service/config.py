@@ -328,8 +328,11 @@ def load(path) -> Config:
     where = str(path)
     try:
         text = Path(path).read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
+    except OSError as exc:
         raise ConfigError(where, "(file)", f"cannot be read: {exc.strerror or exc}") from None
+    except UnicodeDecodeError as exc:
+        raise ConfigError(where, "(file)", f"is not a UTF-8 text file (byte {exc.start}: {exc.reason}); a config "
+                                           "is TOML text") from None
     return loads(text, where)
 
 
@@ -355,20 +358,25 @@ def _array(t: _Table) -> ArrayGeometry:
     shape = t.one_of(["line", "ring", "grid", "positions_m"])
     if shape == "positions_m":
         pos = t.pairs("positions_m", width=3, expected="a list of [x, y, z] positions in metres")
-        if not pos:
-            t.fail("positions_m", pos, "at least one [x, y, z] position")
+        if not pos or len(pos) > cost.MAX_SENSORS:
+            t.fail("positions_m", f"{len(pos)} positions", f"1 to {cost.MAX_SENSORS} [x, y, z] positions")
         n = len(pos)
         make = lambda **w: ArrayGeometry(np.array(pos), kind="positions", **w)  # noqa: E731
     else:
         s = t.table(shape)
         if shape == "line":
-            count, size = s.integer("count", low=1), s.number("spacing_m", low=0, low_open=True, unit="m")
+            count, size = s.integer("count", low=1, high=cost.MAX_SENSORS), s.number("spacing_m", low=0,
+                                                                                     low_open=True, unit="m")
             n, make = count, lambda **w: ArrayGeometry.line(count, size, **w)  # noqa: E731
         elif shape == "ring":
-            count, size = s.integer("count", low=1), s.number("radius_m", low=0, low_open=True, unit="m")
+            count, size = s.integer("count", low=1, high=cost.MAX_SENSORS), s.number("radius_m", low=0,
+                                                                                     low_open=True, unit="m")
             n, make = count, lambda **w: ArrayGeometry.ring(count, size, **w)  # noqa: E731
         else:
-            rows, cols = s.integer("rows", low=1), s.integer("columns", low=1)
+            rows, cols = s.integer("rows", low=1, high=cost.MAX_SENSORS), s.integer("columns", low=1,
+                                                                                  high=cost.MAX_SENSORS)
+            if rows * cols > cost.MAX_SENSORS:
+                s.fail("columns", cols, f"rows x columns at most {cost.MAX_SENSORS} sensors (got {rows * cols})")
             size = s.number("spacing_m", low=0, low_open=True, unit="m")
             n, make = rows * cols, lambda **w: ArrayGeometry.grid(rows, cols, size, **w)  # noqa: E731
         s.done()

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import csv
 import json
+import shutil
 import sys
 from pathlib import Path
 
@@ -148,17 +149,31 @@ def simulate(config: Config, seconds: float, out_path) -> int:
     """Write the config's scene as a float32 multichannel WAV; returns frames written."""
     if not seconds > 0:
         raise UsageError(f"--seconds: got {seconds!r}, expected a positive number of seconds")
-    scene = make_scene(config)
     fs = config.input.samplerate_hz
     total = int(round(seconds * fs))
     block = config.input.block_frames
-    with WavWriter(out_path, fs, config.geometry.n_input_channels) as w:
-        done = 0
-        while done < total:
-            n = min(block, total - done)
-            w.write(scene.render(n))
-            done += n
-            _progress(done, total, fs)
+    channels = config.geometry.n_input_channels
+    size = 44 + total * channels * 4
+    if size > 2**32 - 1:  # a RIFF WAV's sizes are 32-bit
+        raise UsageError(f"--seconds {seconds:g}: {size / 2**30:.1f} GiB of {channels}-channel float32, more than "
+                         f"a WAV file holds (4 GiB, {(2**32 - 45) / (channels * 4 * fs):.0f} s here)")
+    folder = Path(out_path).resolve().parent
+    free = shutil.disk_usage(folder).free if folder.is_dir() else 0
+    if size > free:
+        raise UsageError(f"{out_path}: the simulation needs {size / 2**20:.0f} MB, {folder} has "
+                         f"{free / 2**20:.0f} MB free")
+    scene = make_scene(config)
+    try:
+        with WavWriter(out_path, fs, channels) as w:
+            done = 0
+            while done < total:
+                n = min(block, total - done)
+                w.write(scene.render(n))
+                done += n
+                _progress(done, total, fs)
+    except BaseException:
+        Path(out_path).unlink(missing_ok=True)  # no partial file left behind (error or Ctrl-C)
+        raise
     return total
 
 

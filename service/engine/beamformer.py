@@ -456,7 +456,7 @@ class Beamformer:
         _, work_bytes, n_fft = cost.block_work(
             self._basis.n_rows, len(beams.power_deg), len(beams.audio_deg), beams.bands_hz, beams.transition_hz,
             self.samplerate_hz, self.block_frames, self.bulk_delay_samples)
-        cost.check_memory(work_bytes, len(beams.power_deg), len(beams.audio_deg), self._basis.n_rows)
+        cost.check_memory(work_bytes, len(beams.power_deg), len(beams.audio_deg), self._basis.n_rows, n_fft)
         return _Steering(self.geometry, self._basis, self.sound_speed_mps, self.samplerate_hz,
                          self.bulk_delay_samples, n_fft, self.block_frames, beams, self.compiled), n_fft
 

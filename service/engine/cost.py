@@ -30,6 +30,8 @@ import numpy as np
 from . import bandpower, steering
 from .transform import fast_length
 
+#: Most sensors an array may have (the mirror-pair search alone is sensors^2 x 3 doubles: 25 MB here).
+MAX_SENSORS = 1024
 #: Most power beams one beam set may have, whatever the array.
 MAX_POWER_BEAMS = 20000
 #: Most audio beams one beam set may have.
@@ -141,12 +143,14 @@ def block_work(rows: int, n_power: int, n_audio: int, bands_hz, transition_hz, s
     return ns, steering_bytes + evaluator_bytes, n_fft
 
 
-def check_memory(work_bytes: int, n_power: int, n_audio: int, rows: int) -> None:
+def check_memory(work_bytes: int, n_power: int, n_audio: int, rows: int, n_fft: int = 0) -> None:
     """Refuse a beam set whose steering data and band evaluators exceed :data:`MAX_WORK_BYTES`."""
+    frame = f" with frames of {n_fft} samples" if n_fft else ""
     if work_bytes > MAX_WORK_BYTES:
-        raise AdmissionError(f"{n_power} power beams and {n_audio} audio beams over {rows} sensors need "
+        raise AdmissionError(f"{n_power} power beams and {n_audio} audio beams over {rows} sensors{frame} need "
                              f"{work_bytes / 2**20:.0f} MB of steering data, more than "
-                             f"{MAX_WORK_BYTES / 2**20:.0f} MB: use fewer beams or a narrower band")
+                             f"{MAX_WORK_BYTES / 2**20:.0f} MB: use fewer beams, a narrower band, a wider "
+                             "transition or a smaller aperture")
 
 
 @dataclass(frozen=True)
@@ -186,7 +190,7 @@ class CostModel:
         ``realtime``, over ``max_block_share`` of the block duration."""
         check_counts(len(beams.power_deg), len(beams.audio_deg))
         cost = self.price(beams)
-        check_memory(cost.work_bytes, len(beams.power_deg), len(beams.audio_deg), self.rows)
+        check_memory(cost.work_bytes, len(beams.power_deg), len(beams.audio_deg), self.rows, cost.n_fft)
         if realtime and cost.share > self.max_block_share:
             raise AdmissionError(f"{cost.describe()}: above max_block_share = {self.max_block_share:g}; "
                                  "use fewer beams, fewer audio beams or narrower bands")

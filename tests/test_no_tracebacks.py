@@ -1,0 +1,66 @@
+"""Careless and hostile inputs to the command line: one line on stderr naming where and what,
+exit status 2, no traceback, no partial output, and no long work before the refusal."""
+
+import os
+import subprocess
+import sys
+import time
+
+import pytest
+
+BASE = "[medium]\nsound_speed_mps = 1500.0\n[beams]\nfan = { from_deg = 0, to_deg = 180, step_deg = 1 }\n"
+
+
+def _config(array="line = { count = 16, spacing_m = 0.5 }", band="[300.0, 1400.0]"):
+    return f"[array]\n{array}\n{BASE}band_hz = {band}\n"
+
+
+CASES = {
+    # name: (file bytes, extra args, words the one line must hold)
+    "binary config": (os.urandom(64) + b"\xff\xfe", [], "not a UTF-8 text file"),
+    "TOML syntax": (b"[array\nline = 1\n", [], "bad.toml: is not valid TOML"),
+    "a hundred million sensors": (_config("line = { count = 100000000, spacing_m = 0.5 }").encode(), [],
+                                  "[array.line.count] got 100000000"),
+    "a grid too large": (_config("grid = { rows = 2000, columns = 2000, spacing_m = 0.1 }").encode(), [],
+                         "array.grid"),
+    "spacing of a million km": (_config("line = { count = 16, spacing_m = 1e9 }").encode(), [], "frames of"),
+    "band up to Nyquist": (_config(band="[300.0, 23999.0]").encode(), [], "MB of steering data"),
+    "band from 1 Hz": (_config(band="[1.0, 1600.0]").encode(), [], "MB of steering data"),
+}
+
+
+def _run(args, cwd, timeout=60):
+    t0 = time.monotonic()
+    r = subprocess.run([sys.executable, "-m", "beamtap", *args], capture_output=True, text=True, timeout=timeout,
+                       cwd=cwd)
+    return r, time.monotonic() - t0
+
+
+@pytest.mark.parametrize("name", list(CASES))
+def test_check_refuses_in_one_line(tmp_path, name):
+    content, extra, words = CASES[name]
+    (tmp_path / "bad.toml").write_bytes(content)
+    r, took = _run(["check", "bad.toml", *extra], tmp_path)
+    assert r.returncode == 2, r.stderr
+    assert "Traceback" not in r.stderr and len(r.stderr.strip().splitlines()) == 1, r.stderr
+    assert "bad.toml" in r.stderr and words in r.stderr, r.stderr
+    assert took < 30  # refused from the estimate, not after building (the slowest case took 49 s before)
+
+
+def test_simulate_refuses_more_than_a_wav_holds_and_leaves_nothing(tmp_path):
+    (tmp_path / "ok.toml").write_text(_config())
+    r, _ = _run(["simulate", "ok.toml", "--seconds", "1e9", "--out", "big.wav"], tmp_path)
+    assert r.returncode == 2 and "more than a WAV file holds" in r.stderr and "Traceback" not in r.stderr
+    assert not (tmp_path / "big.wav").exists()
+
+
+@pytest.mark.parametrize("suffix", [".jpg", ".bmp", ""])
+def test_picture_names_the_formats_it_writes(tmp_path, suffix):
+    (tmp_path / "ok.toml").write_text(_config())
+    r, _ = _run(["simulate", "ok.toml", "--seconds", "1", "--out", "in.wav"], tmp_path)
+    assert r.returncode == 0, r.stderr
+    r, _ = _run(["process", "ok.toml", "in.wav", "--out", "out"], tmp_path)
+    assert r.returncode == 0, r.stderr
+    r, _ = _run(["picture", "out/power.csv", "--out", f"x{suffix}"], tmp_path)
+    assert r.returncode == 2 and ".png, .svg, .pdf" in r.stderr and "Traceback" not in r.stderr
+    assert not (tmp_path / f"x{suffix}").exists()
