@@ -71,7 +71,16 @@ def cmd_simulate(args):
 def cmd_process(args):
     from beamtap.service import offline  # noqa: PLC0415
 
-    result = offline.process(load_config(args.config), args.input, args.out)
+    inputs = list(args.inputs)
+    config = args.config
+    if config is None and len(inputs) == 2 and inputs[0].endswith(".toml"):  # the older form: CONFIG INPUT
+        config = inputs.pop(0)
+    if len(inputs) != 1:
+        raise UsageError(f"process: got {len(inputs)} inputs ({' '.join(inputs)}), expected one WAV file or "
+                         "session folder")
+    result = offline.process(None if config is None else load_config(config), inputs[0], args.out,
+                             args.allow_mismatch, warn=lambda line: sys.stderr.write(f"beamtap process: warning: "
+                                                                                     f"{line}\n"))
     print(f"wrote {args.out}/beams.csv, power.csv, audio.wav, summary.json: "
           f"{result['frames_processed']} frames, {result['power_rows']} power rows, "
           f"D = {result['bulk_delay_samples']} samples, "
@@ -196,8 +205,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", required=True, help="output WAV file")
 
     p = _add(sub, "process", cmd_process, "beamform a multichannel WAV offline with the config's beams")
-    p.add_argument("config", help=f"config file (or {BUILTIN})")
-    p.add_argument("input", help="multichannel WAV (16/24/32-bit integer or 32-bit float), or a session folder")
+    p.add_argument("inputs", nargs="+", metavar="INPUT",
+                   help="multichannel WAV (16/24/32-bit integer or 32-bit float), or a session folder "
+                        "(the older form CONFIG.toml INPUT also works)")
+    p.add_argument("--config", default=None, help=f"config file (or {BUILTIN}); a session's own config by default")
+    p.add_argument("--allow-mismatch", action="store_true",
+                   help="beamform a session whose array, channels, medium or sample rate differ from --config")
     p.add_argument("--out", required=True, help="output folder for beams.csv, power.csv, audio.wav, summary.json")
 
     p = _add(sub, "pattern", cmd_pattern, "theoretical array response against azimuth for one look direction")

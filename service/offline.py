@@ -18,7 +18,7 @@ import numpy as np
 from beamtap import __version__
 from beamtap.errors import UsageError
 
-from .config import Config
+from .config import Config, loads
 from .engine import cost, diagnostics
 from .engine.beamformer import Beamformer
 from .engine.directions import fan, unit_vectors
@@ -187,21 +187,72 @@ def _progress(done: int, total: int, fs: float):
         sys.stderr.flush()
 
 
-def process(config: Config, input_path, out_dir) -> dict:
+def session_config(folder) -> Config:
+    """The config a session was recorded with (its manifest's first record)."""
+    from beamtap.session import MANIFEST, read_manifest  # noqa: PLC0415
+
+    folder = Path(folder)
+    if not (folder / MANIFEST).exists():
+        raise UsageError(f"{folder}: not a beamtap session (no {MANIFEST})")
+    first = (read_manifest(folder) or [{}])[0]
+    if first.get("type") != "session" or not isinstance(first.get("config"), str):
+        raise UsageError(f"{folder / MANIFEST}: the session does not hold its config; give one with --config")
+    return loads(first["config"], f"{folder / MANIFEST} (the session's config)")
+
+
+def config_differences(stored: Config, given: Config) -> list:
+    """What differs between a session's config and another, in the parts that decide whether its
+    recordings can be beamformed with the other (array, channels, medium, sample rate)."""
+    a, b = stored.geometry, given.geometry
+    out = []
+    if a.n_sensors != b.n_sensors or not np.allclose(a.positions_m, b.positions_m, atol=1e-6):
+        out.append(f"array: the session has {a.n_sensors} sensors ({a.kind}, aperture {a.aperture_m:.3f} m), "
+                   f"the config {b.n_sensors} ({b.kind}, aperture {b.aperture_m:.3f} m)")
+    elif not (np.array_equal(a.channels, b.channels) and np.array_equal(a.dead, b.dead)):
+        out.append("channel map or dead sensors differ")
+    if a.n_input_channels != b.n_input_channels:
+        out.append(f"input channels: {a.n_input_channels} in the session, {b.n_input_channels} in the config")
+    if abs(stored.sound_speed_mps - given.sound_speed_mps) > 1e-6 * stored.sound_speed_mps:
+        out.append(f"medium: sound speed {stored.sound_speed_mps:.2f} m/s ({stored.medium.source}) in the session, "
+                   f"{given.sound_speed_mps:.2f} m/s ({given.medium.source}) in the config")
+    if stored.input.samplerate_hz != given.input.samplerate_hz:
+        out.append(f"sample rate: {stored.input.samplerate_hz:g} Hz in the session, "
+                   f"{given.input.samplerate_hz:g} Hz in the config")
+    return out
+
+
+def process(config: Config | None, input_path, out_dir, allow_mismatch: bool = False, warn=None) -> dict:
     """Beamform a WAV file or a recorded session folder (the ``process`` command).
 
+    ``config`` None takes a session's own stored config (a WAV needs one).
+    A given config that differs from a session's in array, channels, medium
+    or sample rate is refused unless ``allow_mismatch``. ``warn`` (a
+    callable taking one line) hears about segments shorter than the
+    manifest says. Outputs are created only once the inputs are checked.
     Returns the summary it writes to ``summary.json``.
     """
     out = Path(out_dir)
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise UsageError(f"--out {out}: cannot create folder: {exc.strerror}") from None
+    warn = warn or (lambda line: None)
     if Path(input_path).is_dir():
-        return _process_runs(config, _session_runs(config, Path(input_path)), out, str(input_path), "session")
+        stored = session_config(input_path)
+        if config is None:
+            config = stored
+        else:
+            diffs = config_differences(stored, config)
+            if diffs and not allow_mismatch:
+                raise UsageError(f"{config.where} does not match the session {input_path}: {'; '.join(diffs)} "
+                                 "(--allow-mismatch to beamform it anyway)")
+            for d in diffs:
+                warn(f"{input_path}: {d} (processing anyway, --allow-mismatch)")
+        runs = _session_runs(config, Path(input_path), warn)
+        _make_folder(out)
+        return _process_runs(config, runs, out, str(input_path), "session")
+    if config is None:
+        raise UsageError(f"{input_path}: a WAV file needs --config FILE (only a session holds its own config)")
     with WavReader(input_path) as reader:
         _check_input(config, input_path, reader.samplerate_hz, reader.channels)
         total = reader.frames
+        _make_folder(out)
 
         def blocks():
             while True:
@@ -212,6 +263,13 @@ def process(config: Config, input_path, out_dir) -> dict:
 
         runs = [(0, total, reader.channels, reader.sample_format, blocks())]
         return _process_runs(config, runs, out, reader.path, reader.sample_format)
+
+
+def _make_folder(out: Path) -> None:
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise UsageError(f"--out {out}: cannot create folder: {exc.strerror}") from None
 
 
 def _check_input(config: Config, where, samplerate_hz, channels):
@@ -225,7 +283,7 @@ def _check_input(config: Config, where, samplerate_hz, channels):
                          f"needs {need} (highest channel in its channel map)")
 
 
-def _session_runs(config: Config, folder: Path):
+def _session_runs(config: Config, folder: Path, warn):
     """Contiguous runs of a session's raw segments: (first, frames, channels, format, blocks)."""
     from beamtap.session import MANIFEST, segments  # noqa: PLC0415
 
@@ -236,6 +294,15 @@ def _session_runs(config: Config, folder: Path):
         raise UsageError(f"{folder}: the session has no raw segments to beamform")
     for seg in segs:
         _check_input(config, folder / seg["file"], seg["samplerate_hz"], seg["channels"])
+        try:
+            with WavReader(folder / seg["file"]) as r:
+                on_disk = r.frames
+        except UsageError as exc:
+            raise UsageError(f"{folder / seg['file']}: {exc}") from None
+        if on_disk < seg["frames"]:
+            warn(f"{folder / seg['file']}: {on_disk} frames on disk, the manifest says {seg['frames']}; "
+                 "the missing end is a gap")
+            seg["frames"] = on_disk
     runs, current = [], []
     for seg in segs:
         if current and seg["first_sample"] != current[-1]["first_sample"] + current[-1]["frames"]:

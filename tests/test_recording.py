@@ -122,7 +122,7 @@ def test_sigkill_loses_at_most_the_last_second(tmp_path):
     recorded_end = segs[-1]["first_sample"] + len(data[-1])
     lost_s = (end_published - recorded_end) / FS
     print(f"\nSIGKILL test: {lost_s * 1e3:.0f} ms of published raw audio not on disk")
-    assert lost_s <= 1.0
+    assert lost_s <= 0.5  # headers every 0.25 s; ten runs of bench/kill_bench.py: worst 0.22 s
     assert all(b["first_sample"] == a["first_sample"] + len(d) for a, b, d in zip(segs, segs[1:], data))
     for kind in ("audio",):
         for s in segments(session, kind):
@@ -330,3 +330,50 @@ def test_default_record_folder_is_absolute_under_the_data_home(tmp_path):
     assert st["session"].startswith(str(expected) + os.sep)
     assert f"recordings go to {expected}" in log
     assert read_manifest(st["session"])[0]["type"] == "session"
+
+
+def _run_cli(*args, cwd=None):
+    return subprocess.run([sys.executable, "-m", "beamtap", *map(str, args)], capture_output=True, text=True,
+                          timeout=300, cwd=cwd)
+
+
+def test_process_uses_the_sessions_own_config_and_refuses_a_mismatch(tmp_path):
+    rec = tmp_path / "rec"
+    cfg_text = config(rec, segment_s=1.0, what='["raw"]')
+    with running_service(tmp_path, cfg_text) as svc:
+        with Controller(svc.control) as ctl:
+            ctl.record("start")
+            wait_recording(ctl, int(2.5 * FS))
+            ctl.record("stop")
+    session = rec / os.listdir(rec)[0]
+    # no --config: the session's stored config
+    r = _run_cli("process", session, "--out", tmp_path / "own")
+    assert r.returncode == 0, r.stderr
+    assert json.loads((tmp_path / "own" / "summary.json").read_text())["frames_processed"] >= int(2.5 * FS)
+    # a different array, or another medium: refused, the difference named, no output folder made
+    four = tmp_path / "four.toml"
+    four.write_text(line_config(count=4, samplerate_hz=FS, block_frames=BLOCK))
+    r = _run_cli("process", "--config", four, session, "--out", tmp_path / "bad")
+    assert r.returncode == 2 and "array: the session has 8 sensors" in r.stderr and "4" in r.stderr, r.stderr
+    assert not (tmp_path / "bad").exists()
+    air = tmp_path / "air.toml"
+    air.write_text(config(rec).replace("sound_speed_mps = 1500.0", "air = { temperature_c = 20.0 }"))
+    r = _run_cli("process", "--config", air, session, "--out", tmp_path / "bad")
+    assert r.returncode == 2 and "medium: sound speed 1500.00 m/s" in r.stderr and "343" in r.stderr, r.stderr
+    r = _run_cli("process", "--config", air, session, "--out", tmp_path / "anyway", "--allow-mismatch")
+    assert r.returncode == 0 and "warning" in r.stderr and "medium" in r.stderr, r.stderr
+    # a raw segment cut short on disk: a one-line warning with both numbers
+    seg = segments(session, "raw")[0]
+    path = session / seg["file"]
+    with open(path, "r+b") as f:
+        f.truncate(44 + 1000 * 8 * 4)
+    r = _run_cli("process", session, "--out", tmp_path / "short")
+    assert r.returncode == 0, r.stderr
+    assert f"1000 frames on disk, the manifest says {seg['frames']}" in r.stderr
+    # a WAV needs a config; the older CONFIG INPUT form still works
+    r = _run_cli("simulate", four, "--seconds", "0.5", "--out", tmp_path / "four.wav")
+    assert r.returncode == 0, r.stderr
+    r = _run_cli("process", tmp_path / "four.wav", "--out", tmp_path / "w")
+    assert r.returncode == 2 and "needs --config" in r.stderr
+    r = _run_cli("process", four, tmp_path / "four.wav", "--out", tmp_path / "w")
+    assert r.returncode == 0, r.stderr
