@@ -42,6 +42,24 @@ def load_config(path):
     return cfg.load(path)
 
 
+def _utc_arg(text: str) -> float:
+    """--start-utc: ISO 8601 (``2026-12-05T10:15:00Z``, fractions allowed) or POSIX seconds."""
+    import datetime as dt  # noqa: PLC0415
+
+    try:
+        return float(text)
+    except ValueError:
+        pass
+    try:
+        t = dt.datetime.fromisoformat(text.replace("Z", "+00:00"))
+    except ValueError:
+        raise UsageError(f"--start-utc {text!r}: expected ISO 8601 UTC such as 2026-12-05T10:15:00Z, "
+                         "or POSIX seconds") from None
+    if t.tzinfo is None:
+        t = t.replace(tzinfo=dt.timezone.utc)
+    return t.timestamp()
+
+
 def _look(text: str):
     try:
         parts = [float(p) for p in text.split(",")]
@@ -78,9 +96,13 @@ def cmd_process(args):
     if len(inputs) != 1:
         raise UsageError(f"process: got {len(inputs)} inputs ({' '.join(inputs)}), expected one WAV file or "
                          "session folder")
+    start_utc = None
+    if args.start_utc is not None:
+        start_utc = _utc_arg(args.start_utc)
     result = offline.process(None if config is None else load_config(config), inputs[0], args.out,
                              args.allow_mismatch, warn=lambda line: sys.stderr.write(f"beamtap process: warning: "
-                                                                                     f"{line}\n"))
+                                                                                     f"{line}\n"),
+                             start_utc=start_utc)
     print(f"wrote {args.out}/beams.csv, power.csv, audio.wav, summary.json: "
           f"{result['frames_processed']} frames, {result['power_rows']} power rows, "
           f"D = {result['bulk_delay_samples']} samples, "
@@ -209,6 +231,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="multichannel WAV (16/24/32-bit integer or 32-bit float), or a session folder "
                         "(the older form CONFIG.toml INPUT also works)")
     p.add_argument("--config", default=None, help=f"config file (or {BUILTIN}); a session's own config by default")
+    p.add_argument("--start-utc", default=None, metavar="TIME",
+                   help="UTC of a WAV's first sample (ISO 8601 or POSIX seconds) for the power table's time_utc")
     p.add_argument("--allow-mismatch", action="store_true",
                    help="beamform a session whose array, channels, medium or sample rate differ from --config")
     p.add_argument("--out", required=True, help="output folder for beams.csv, power.csv, audio.wav, summary.json")

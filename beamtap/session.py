@@ -46,7 +46,7 @@ from pathlib import Path
 
 import numpy as np
 
-from beamtap import __version__
+from beamtap import __version__, powertable
 from beamtap.wavfile import WavReader, WavWriter
 
 MANIFEST = "manifest.jsonl"
@@ -135,6 +135,7 @@ class SessionWriter:
         self._counter = {k: 0 for k in KINDS}
         self._last_flush = self._last_header = time.monotonic()
         self.beam_table_id = None
+        self._beam_table: dict = {}
         self.frames_written = {k: 0 for k in KINDS}
         self.segments_closed = 0
         now = time.time()
@@ -156,6 +157,7 @@ class SessionWriter:
             return
         changed = self.beam_table_id is not None
         self.beam_table_id = table.get("beam_table")
+        self._beam_table = table
         self.record("beams", **table)
         if changed:
             for kind in ("audio", "power"):
@@ -212,6 +214,10 @@ class SessionWriter:
         if kind == "power":
             name = f"power-{self._counter[kind]:06d}.csv"
             seg = {"file": WholeRecordFile(self.folder / name), "frames": 0, "rows": 0}
+            t = self._beam_table
+            if t.get("power_deg") is not None:  # what the columns are, beside the segment
+                powertable.write_sidecars(self.folder / name, t["power_deg"], t.get("bands_hz", []),
+                                          t.get("band_delay_samples", [0] * len(t.get("bands_hz", []))))
         else:
             name = f"{kind}-{self._counter[kind]:06d}.wav"
             seg = {"writer": WavWriter(self.folder / name, self.fs, channels, self.sample_format), "frames": 0}
@@ -228,10 +234,8 @@ class SessionWriter:
         rows = np.asarray(rows, np.float32)
         seg = self._segment_for("power", first_sample, rows.size, utc_first)
         if seg["file"].size == 0:
-            seg["file"].append((",".join(["first_sample", "time_utc"] + [
-                f"band{b}_beam{i}" for b in range(rows.shape[0]) for i in range(rows.shape[1])]) + "\n").encode())
-        seg["file"].append((",".join([str(int(first_sample)), f"{utc_first:.6f}"] + [f"{v:.3f}" for v in rows.ravel()])
-                            + "\n").encode())
+            seg["file"].append((powertable.header(rows.shape[0], rows.shape[1]) + "\n").encode())
+        seg["file"].append(powertable.rows_text([first_sample], [utc_first], rows[None]).encode())
         seg["rows"] += 1
         seg["frames"] += self.power_block_frames
         self.frames_written["power"] += self.power_block_frames  # input frames the rows cover

@@ -227,7 +227,7 @@ def control_part(n: int, tmp: Path, r: random.Random) -> dict:
 
 def forged(r: random.Random, last: int) -> list:
     h = {}
-    for key, good in (("v", 1), ("first_sample", last + r.choice([-BLOCK, 0, BLOCK, 10 * BLOCK, 10**12])),
+    for key, good in (("v", 2), ("first_sample", last + r.choice([-BLOCK, 0, BLOCK, 10 * BLOCK, 10**12])),
                       ("time_utc", 1.8e9), ("stream", "up"), ("dtype", "<f4"), ("shape", [BLOCK, CH]),
                       ("samplerate_hz", FS)):
         k = r.randrange(4)

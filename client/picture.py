@@ -1,58 +1,63 @@
 """``beamtap picture``: a bearing-against-time image of band power.
 
-From the ``power.csv`` that ``beamtap process`` writes (with its
-``beams.csv`` and ``summary.json`` beside it), or from a live capture of the
-stream. Bearing runs across, time runs down, colour is band power in dB re
+From a power table (the ``power.csv`` that ``beamtap process`` writes, a
+recorder's ``power-*.csv`` segment, or a whole session folder; see
+:mod:`beamtap.powertable`), or from a live capture of the stream. Bearing runs across, time runs down, colour is band power in dB re
 full scale with a colour bar; the title names the array and the band.
 Needs the plotting extra (``pip install 'beamtap[plot]'``).
 """
 
 from __future__ import annotations
 
-import csv
 import json
 import time
 from pathlib import Path
 
 import numpy as np
 
+from beamtap import powertable
 from beamtap.errors import UsageError
 
 from .subscriber import Subscriber
 
 
 def from_csv(power_csv, band: int = 0):
-    """(times_s, bearings_deg, power_db (rows, beams), title) from process output."""
+    """(times_s, bearings_deg, power_db (rows, beams), title) from a power table: the ``power.csv`` of
+    ``beamtap process``, a recorder segment, or a whole session or output folder
+    (:mod:`beamtap.powertable`)."""
     path = Path(power_csv)
-    try:
-        with open(path, newline="") as f:
-            rows = list(csv.reader(f))
-    except OSError as exc:
-        raise UsageError(f"{path}: cannot read: {exc.strerror}") from None
-    if len(rows) < 2 or rows[0][0] != "time_s":
-        raise UsageError(f"{path}: not a beamtap power.csv (expected a 'time_s' column and at least one row)")
-    header = rows[0][1:]
-    try:
-        data = np.array([[float(v) for v in r] for r in rows[1:]])
-    except ValueError as exc:
-        raise UsageError(f"{path}: bad number in power.csv: {exc}") from None
-    columns = [i for i, name in enumerate(header) if ("@band" not in name and band == 0) or
-               name.endswith(f"@band{band}")]
-    if not columns:
-        raise UsageError(f"--band {band}: power.csv has no such band")
-    beams_csv = path.with_name("beams.csv")
-    bearings = np.arange(len(columns), dtype=float)
-    if beams_csv.exists():
-        with open(beams_csv, newline="") as f:
-            table = list(csv.DictReader(f))
-        bearings = np.array([float(table[int(header[i].split("@")[0])]["azimuth_deg"]) for i in columns])
-    title = "beamtap power"
-    summary = path.with_name("summary.json")
+    table = powertable.read(path)
+    if len(table.first_sample) == 0:
+        raise UsageError(f"{path}: the power table has no rows")
+    n_bands = table.power_db.shape[1]
+    if not 0 <= band < n_bands:
+        raise UsageError(f"--band {band}: {path} has {n_bands} band{'s' if n_bands > 1 else ''} "
+                         f"(0{f' to {n_bands - 1}' if n_bands > 1 else ''})")
+    fs = _samplerate(path)
+    times = (table.first_sample - table.first_sample[0]) / fs
+    lo, hi = table.bands_hz[band]
+    title = f"beamtap power, band {lo:g}-{hi:g} Hz"
+    summary = (path if path.is_dir() else path.parent) / "summary.json"
     if summary.exists():
         s = json.loads(summary.read_text())["summary"]
-        b = s["bands_hz"][band]
-        title = (f"{s['array_kind']} array, {s['active_sensors']} sensors, band {b[0]:g}-{b[1]:g} Hz")
-    return data[:, 0], bearings, data[:, 1:][:, columns], title
+        title = f"{s['array_kind']} array, {s['active_sensors']} sensors, band {lo:g}-{hi:g} Hz"
+    return times, table.power_deg[:, 0], table.power_db[:, band, :], title
+
+
+def _samplerate(path: Path) -> float:
+    """The sample rate behind a power table: from ``summary.json`` (process output) or the session's
+    manifest (recorder segments)."""
+    folder = path if path.is_dir() else path.parent
+    try:
+        if (folder / "summary.json").exists():
+            return float(json.loads((folder / "summary.json").read_text())["samplerate_hz"])
+        if (folder / "manifest.jsonl").exists():
+            from beamtap.session import read_manifest  # noqa: PLC0415
+
+            return float(read_manifest(folder)[0]["samplerate_hz"])
+    except (OSError, ValueError, KeyError, IndexError) as exc:
+        raise UsageError(f"{folder}: cannot tell the sample rate ({exc})") from None
+    raise UsageError(f"{path}: no summary.json or manifest.jsonl beside it to tell the sample rate")
 
 
 def from_live(endpoint: str, seconds: float, band: int = 0):

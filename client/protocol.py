@@ -20,7 +20,7 @@ from __future__ import annotations
 import msgpack
 import numpy as np
 
-PROTOCOL_VERSION = 1
+PROTOCOL_VERSION = 2
 TOPICS = ("power", "audio", "raw", "status", "beams")
 #: Largest control request accepted, bytes (a 20,000-direction list is about 360 kB of msgpack).
 MAX_REQUEST_BYTES = 512 * 1024

@@ -15,7 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
-from beamtap import __version__
+from beamtap import __version__, powertable
 from beamtap.errors import UsageError
 
 from .config import Config, loads
@@ -158,7 +158,9 @@ def simulate(config: Config, seconds: float, out_path) -> int:
         raise UsageError(f"--seconds {seconds:g}: {size / 2**30:.1f} GiB of {channels}-channel float32, more than "
                          f"a WAV file holds (4 GiB, {(2**32 - 45) / (channels * 4 * fs):.0f} s here)")
     folder = Path(out_path).resolve().parent
-    free = shutil.disk_usage(folder).free if folder.is_dir() else 0
+    if not folder.is_dir():
+        raise UsageError(f"{out_path}: cannot write: the folder {folder} does not exist")
+    free = shutil.disk_usage(folder).free
     if size > free:
         raise UsageError(f"{out_path}: the simulation needs {size / 2**20:.0f} MB, {folder} has "
                          f"{free / 2**20:.0f} MB free")
@@ -221,7 +223,8 @@ def config_differences(stored: Config, given: Config) -> list:
     return out
 
 
-def process(config: Config | None, input_path, out_dir, allow_mismatch: bool = False, warn=None) -> dict:
+def process(config: Config | None, input_path, out_dir, allow_mismatch: bool = False, warn=None,
+            start_utc: float | None = None) -> dict:
     """Beamform a WAV file or a recorded session folder (the ``process`` command).
 
     ``config`` None takes a session's own stored config (a WAV needs one).
@@ -229,6 +232,8 @@ def process(config: Config | None, input_path, out_dir, allow_mismatch: bool = F
     or sample rate is refused unless ``allow_mismatch``. ``warn`` (a
     callable taking one line) hears about segments shorter than the
     manifest says. Outputs are created only once the inputs are checked.
+    ``start_utc`` (POSIX seconds) dates a WAV's first sample; a session's
+    rows are dated from its segments.
     Returns the summary it writes to ``summary.json``.
     """
     out = Path(out_dir)
@@ -244,9 +249,9 @@ def process(config: Config | None, input_path, out_dir, allow_mismatch: bool = F
                                  "(--allow-mismatch to beamform it anyway)")
             for d in diffs:
                 warn(f"{input_path}: {d} (processing anyway, --allow-mismatch)")
-        runs = _session_runs(config, Path(input_path), warn)
+        runs, anchors = _session_runs(config, Path(input_path), warn)
         _make_folder(out)
-        return _process_runs(config, runs, out, str(input_path), "session")
+        return _process_runs(config, runs, out, str(input_path), "session", anchors)
     if config is None:
         raise UsageError(f"{input_path}: a WAV file needs --config FILE (only a session holds its own config)")
     with WavReader(input_path) as reader:
@@ -262,7 +267,23 @@ def process(config: Config | None, input_path, out_dir, allow_mismatch: bool = F
                 yield x, clipped
 
         runs = [(0, total, reader.channels, reader.sample_format, blocks())]
-        return _process_runs(config, runs, out, reader.path, reader.sample_format)
+        anchors = [] if start_utc is None else [(0, float(start_utc))]
+        return _process_runs(config, runs, out, reader.path, reader.sample_format, anchors)
+
+
+def _utc_mapper(anchors, fs: float):
+    """Stream index -> POSIX UTC seconds from (first_sample, utc) anchors (segment starts); None
+    when there are none (a WAV with no known start)."""
+    if not anchors:
+        return lambda n: None
+    firsts = np.array([a[0] for a in anchors], np.int64)
+    utcs = np.array([a[1] for a in anchors])
+
+    def utc_of(n):
+        i = max(int(np.searchsorted(firsts, n, side="right")) - 1, 0)
+        return float(utcs[i] + (int(n) - firsts[i]) / fs)
+
+    return utc_of
 
 
 def _make_folder(out: Path) -> None:
@@ -323,34 +344,29 @@ def _session_runs(config: Config, folder: Path, warn):
                     left -= len(x)
                     yield x, clipped
 
+    anchors = [(int(seg["first_sample"]), float(seg["utc"])) for seg in segs if "utc" in seg]
     return [(run[0]["first_sample"], sum(s["frames"] for s in run), run[0]["channels"],
-             run[0].get("sample_format") or "float32", blocks(run)) for run in runs]
+             run[0].get("sample_format") or "float32", blocks(run)) for run in runs], anchors
 
 
-def _process_runs(config: Config, runs, out: Path, source: str, input_format: str) -> dict:
+def _process_runs(config: Config, runs, out: Path, source: str, input_format: str, anchors=()) -> dict:
     bf = make_beamformer(config)
     fs = config.input.samplerate_hz
     d = bf.bulk_delay_samples
     block = config.input.block_frames
     beams = config.beams
-    lag = d + int(bf.band_filters[0].filter.group_delay_samples)
-    with open(out / "beams.csv", "w", newline="") as f:
-        w = csv.writer(f)
-        w.writerow(["beam", "azimuth_deg", "elevation_deg"])
-        for i, (az, el) in enumerate(beams.power_deg):
-            w.writerow([i, f"{az:g}", f"{el:g}"])
+    band_delays = [int(ev.filter.group_delay_samples) for ev in bf.band_filters]
+    power_csv = out / "power.csv"
+    powertable.write_sidecars(power_csv, beams.power_deg, beams.bands_hz, band_delays)
+    utc_of = _utc_mapper(anchors, fs)
     counts = {"nan": 0, "clipped": 0, "frames": 0, "power_rows": 0, "gaps": 0, "gap_frames": 0}
     n_audio = len(beams.audio_deg)
-    multi_band = len(beams.bands_hz) > 1
-    header = ["time_s"] + [f"{i}" if not multi_band else f"{i}@band{b}"
-                           for b in range(len(beams.bands_hz)) for i in range(len(beams.power_deg))]
     audio_w = WavWriter(out / "audio.wav", fs, n_audio) if n_audio else None
     origin = runs[0][0] if runs else 0
     total = sum(r[1] for r in runs)
     try:
-        with open(out / "power.csv", "w", newline="") as pf:
-            pw = csv.writer(pf)
-            pw.writerow(header)
+        with open(power_csv, "w", encoding="utf-8") as pf:
+            pf.write(powertable.header(len(beams.bands_hz), len(beams.power_deg)) + "\n")
             end_prev = None
             for first, frames, channels, fmt, blocks in runs:
                 if end_prev is not None:  # a gap: silence in audio.wav keeps it on the session's time axis
@@ -369,11 +385,12 @@ def _process_runs(config: Config, runs, out: Path, source: str, input_format: st
                     if audio_w is not None and len(result.audio):
                         audio_w.write(result.audio[skip:])
                         skip = max(0, skip - len(result.audio))
-                    for p_first, row in zip(result.power_first_sample, result.power_db):
-                        if p_first + block > run_end:
-                            continue  # a block completed by the zero tail, not by input
-                        pw.writerow([f"{(p_first - origin - lag) / fs:.6f}"] + [f"{v:.3f}" for v in row.ravel()])
-                        counts["power_rows"] += 1
+                    # rows computed from input only (not from the zero tail that flushes the audio)
+                    keep = result.power_first_sample + bf.power_delay_samples + block <= run_end
+                    firsts = result.power_first_sample[keep]
+                    if len(firsts):
+                        pf.write(powertable.rows_text(firsts, [utc_of(n) for n in firsts], result.power_db[keep]))
+                        counts["power_rows"] += len(firsts)
                     counts["nan"] += result.nan_count
                     if fmt == "float32":
                         counts["clipped"] += result.clip_count
@@ -399,10 +416,11 @@ def _process_runs(config: Config, runs, out: Path, source: str, input_format: st
         "config": config.text,
         "samplerate_hz": fs,
         "bulk_delay_samples": d,
-        "band_filter_delay_samples": lag - d,
-        "power_time_axis": "time_s is the input time of the first sample each power row covers "
-                           "(bulk delay and band filter delay removed), from the first input sample; "
-                           "rows cover whole blocks only",
+        "band_filter_delay_samples": band_delays,
+        "power_delay_samples": bf.power_delay_samples,
+        "power_time_axis": "first_sample is the stream index of the first input sample each power row "
+                           "describes (bulk delay and band filter delays removed; all bands of a row describe "
+                           "the same span); time_utc its UTC time when known; rows cover whole blocks only",
         "first_sample": int(origin),
         "frames_processed": counts["frames"],
         "gaps": counts["gaps"],

@@ -25,6 +25,10 @@ from beamtap.session import SessionWriter, iso
 log = logging.getLogger("beamtap.recorder")
 
 _STOP = object()
+#: Seconds without data while recording before a warning and an ``idle`` manifest record.
+IDLE_S = 5.0
+#: Seconds between the recording status lines in the log.
+STATUS_EVERY_S = 10.0
 
 
 class Recorder:
@@ -149,6 +153,8 @@ class Recorder:
 
     def _run(self):
         dropped_seen = 0
+        last_data = next_line = time.monotonic()
+        idle_noted = False
         while not (self._stopping.is_set() and self._queue.empty()):
             try:
                 item = self._queue.get(timeout=0.2)
@@ -156,8 +162,22 @@ class Recorder:
                 item = None
             w = self._writer
             if w is None:
+                last_data, idle_noted = time.monotonic(), False
                 continue
             try:
+                now = time.monotonic()
+                if item is not None and item[0] in ("raw", "audio", "power"):
+                    last_data, idle_noted = now, False
+                elif now - last_data >= IDLE_S and not idle_noted:
+                    # The pipeline gave nothing to record: say so, here and in the session itself.
+                    log.warning("recording: no data for %.0f s (source stalled?)", now - last_data)
+                    w.record("idle", seconds=round(now - last_data, 1), utc=time.time())
+                    idle_noted = True
+                if now >= next_line:
+                    log.info("recording %s: %s written, %d blocks dropped", w.folder.name,
+                             ", ".join(f"{k} {v} frames" for k, v in w.frames_written.items() if k in self._what),
+                             self.queue_dropped)
+                    next_line = now + STATUS_EVERY_S
                 if item is not None:
                     if item[0] == "stop":
                         self._finish(item[1])

@@ -17,7 +17,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from beamtap.client import Controller, Subscriber
-from beamtap.client.protocol import encode
+from beamtap.client.protocol import PROTOCOL_VERSION, encode
 
 from conftest import line_config, running_service
 
@@ -71,7 +71,7 @@ class Upstream:
 
 
 def header(**overrides):
-    h = {"v": 1, "first_sample": 0, "samplerate_hz": FS, "time_utc": 1.8e9, "stream": "upstream-1",
+    h = {"v": PROTOCOL_VERSION, "first_sample": 0, "samplerate_hz": FS, "time_utc": 1.8e9, "stream": "upstream-1",
          "dtype": "<f4", "shape": [BLOCK, CH]}
     h.update(overrides)
     return {k: v for k, v in h.items() if v is not _ABSENT}
@@ -183,7 +183,7 @@ def forged_messages(draw):
     for key in ("v", "first_sample", "time_utc", "stream", "dtype", "shape", "samplerate_hz"):
         if draw(st.booleans()):
             h[key] = draw(st.one_of(_values, st.sampled_from({
-                "v": [1], "first_sample": [0, 2**62, 10**6], "time_utc": [1.8e9], "stream": ["upstream-1", "other"],
+                "v": [PROTOCOL_VERSION], "first_sample": [0, 2**62, 10**6], "time_utc": [1.8e9], "stream": ["upstream-1", "other"],
                 "dtype": ["<f4", "<f8", "|u1", "<i2"], "shape": [[BLOCK, CH], [1, CH], [BLOCK, 1], [0, CH]],
                 "samplerate_hz": [FS]}[key])))
     payload = draw(st.one_of(st.binary(max_size=64), st.just(np.zeros((BLOCK, CH), np.float32).tobytes())))

@@ -72,10 +72,20 @@ def test_simulate_then_process(scene, tmp_path):
     assert r.returncode == 0, r.stderr
     beams = list(csv.reader(open(out / "beams.csv")))
     assert beams[0] == ["beam", "azimuth_deg", "elevation_deg"] and len(beams) == 182
-    power = np.genfromtxt(out / "power.csv", delimiter=",", names=True)
-    assert power.dtype.names[0] == "time_s" and len(power.dtype.names) == 182
-    rows = np.array([list(r)[1:] for r in power])
-    assert len(rows) == 48000 // 512
+    with open(out / "power.csv", newline="") as f:  # the one power table format, read with plain csv
+        table = list(csv.reader(f))
+    assert table[0][:3] == ["first_sample", "time_utc", "b0_0"] and len(table[0]) == 2 + 181
+    assert all(r[1] == "" for r in table[1:])  # a WAV with no --start-utc has no UTC
+    firsts = np.array([int(r[0]) for r in table[1:]])
+    rows = np.array([[float(v) for v in r[2:]] for r in table[1:]])
+    summary = json.loads((out / "summary.json").read_text())
+    # each row's first_sample: its block's start less D and the band filter delay; none before the input
+    delay = summary["power_delay_samples"]
+    assert delay == summary["bulk_delay_samples"] + max(summary["band_filter_delay_samples"])
+    assert np.all(np.diff(firsts) == 512) and firsts[0] >= 0 and (firsts[0] + delay) % 512 == 0
+    assert len(rows) == 48000 // 512 - -(-delay // 512)
+    bands = list(csv.reader(open(out / "bands.csv")))
+    assert bands[0] == ["band", "low_hz", "high_hz", "filter_delay_samples"] and len(bands) == 2
     peak = np.argmax(rows[5:].mean(axis=0))
     assert float(beams[peak + 1][1]) == pytest.approx(71.5, abs=1.0)
     # level: a -13.01 dB RMS tone (amplitude 0.316) from the look direction, unity gain
@@ -86,7 +96,6 @@ def test_simulate_then_process(scene, tmp_path):
     t = np.arange(48000) / 16000
     want = np.sqrt(2) * 10 ** (-13.0103 / 20) * np.sin(2 * np.pi * 1000 * t)
     assert np.max(np.abs(audio[2000:-2000, 0] - want[2000:-2000])) < 2e-3
-    summary = json.loads((out / "summary.json").read_text())
     assert summary["frames_processed"] == 48000 and summary["nan_samples"] == 0
     assert summary["bulk_delay_samples"] > 0 and "[array]" in summary["config"]
 

@@ -377,3 +377,41 @@ def test_process_uses_the_sessions_own_config_and_refuses_a_mismatch(tmp_path):
     assert r.returncode == 2 and "needs --config" in r.stderr
     r = _run_cli("process", four, tmp_path / "four.wav", "--out", tmp_path / "w")
     assert r.returncode == 0, r.stderr
+
+
+def test_one_power_table_format_from_recorder_and_process_through_picture(tmp_path):
+    """The recorder's power segments and `process` over the same session write the same table
+    (same columns, same first_sample for the same span, values to float32 rounding), and
+    `picture` draws a recorder segment, a whole session and a process output alike."""
+    import csv as csv_mod
+
+    from beamtap import powertable
+
+    rec = tmp_path / "rec"
+    with running_service(tmp_path, config(rec, segment_s=30.0, what='["raw", "power"]')) as svc:
+        with Controller(svc.control) as ctl:
+            ctl.record("start")
+            wait_recording(ctl, 3 * FS)
+            ctl.record("stop")
+    session = rec / os.listdir(rec)[0]
+    seg_csv = sorted(session.glob("power-*.csv"))[0]
+    header = next(csv_mod.reader(open(seg_csv)))
+    assert header[:3] == ["first_sample", "time_utc", "b0_0"]
+    live = powertable.read(session)
+    assert np.all(np.isfinite(live.time_utc))  # the recorder knows UTC
+    r = _run_cli("process", session, "--out", tmp_path / "again")
+    assert r.returncode == 0, r.stderr
+    offline = powertable.read(tmp_path / "again")
+    assert next(csv_mod.reader(open(tmp_path / "again" / "power.csv"))) == header
+    assert np.array_equal(offline.power_deg, live.power_deg) and offline.bands_hz == live.bands_hz
+    common, i_live, i_off = np.intersect1d(live.first_sample, offline.first_sample, return_indices=True)
+    assert len(common) > 40
+    settled = slice(8, None)  # past the engine's start-up in the live run and the offline run
+    assert np.allclose(live.power_db[i_live][settled], offline.power_db[i_off][settled], atol=0.01)
+    # the session's UTC carried into process's rows for the same spans (to a microsecond)
+    assert np.allclose(live.time_utc[i_live], offline.time_utc[i_off], atol=2e-6)
+    for source in (seg_csv, session, tmp_path / "again" / "power.csv"):
+        png = tmp_path / f"{source.name}.png"
+        r = _run_cli("picture", source, "--out", png)
+        assert r.returncode == 0, (source, r.stderr)
+        assert png.stat().st_size > 1000

@@ -132,8 +132,8 @@ int main(int argc, char **argv) {
             if (msgpack_unpack_next(&up, zmq_msg_data(&part[1]), zmq_msg_size(&part[1]), &off) ==
                 MSGPACK_UNPACK_SUCCESS) {
                 const msgpack_object *v = map_get(&up.data, "v");
-                if (!v || as_int(v) != 1) {
-                    fprintf(stderr, "power_peak: protocol version is not 1\n");
+                if (!v || as_int(v) != 2) {
+                    fprintf(stderr, "power_peak: protocol version is not 2\n");
                 } else if (zmq_msg_size(&part[0]) == 5 && memcmp(zmq_msg_data(&part[0]), "beams", 5) == 0) {
                     on_beams(&up.data);
                 } else if (zmq_msg_size(&part[0]) == 5 && memcmp(zmq_msg_data(&part[0]), "power", 5) == 0) {

@@ -124,6 +124,8 @@ class BandPowerEvaluator:
         Frame length N.
     valid : int
         Number of frame samples at the end that form the power block.
+    hold_samples : int
+        The block ends this many samples before the frame's end (default 0).
 
     Notes
     -----
@@ -136,15 +138,19 @@ class BandPowerEvaluator:
     real matrix product per batch of beams and blocks, exact to that cut-off.
     """
 
-    def __init__(self, band_filter: BandFilter, n_fft: int, valid: int):
+    def __init__(self, band_filter: BandFilter, n_fft: int, valid: int, hold_samples: int = 0):
         self.filter = band_filter
         self.n_fft = int(n_fft)
+        self.hold_samples = int(hold_samples)
         g = np.fft.rfft(band_filter.taps, n_fft)
         keep = np.nonzero(np.abs(g) >= BIN_FLOOR * np.abs(g).max())[0]
         k1, k2 = max(int(keep[0]), 1), min(int(keep[-1]), n_fft // 2 - 1)
         self.bins = np.arange(k1, k2 + 1)
         gk = g[self.bins]
-        theta = 2.0 * np.pi * np.outer(np.arange(n_fft - valid, n_fft), self.bins) / n_fft
+        # The block: the `valid` samples ending `hold_samples` before the frame's end (bands with
+        # shorter filters are held back so that every band's row describes the same input span).
+        end = n_fft - self.hold_samples
+        theta = 2.0 * np.pi * np.outer(np.arange(end - valid, end), self.bins) / n_fft
         # Columns for the real and the imaginary part of each filtered bin, interleaved like complex64 memory.
         w = np.empty((valid, 2 * len(self.bins)))
         w[:, 0::2] = (2.0 / n_fft) * (np.cos(theta) * gk.real - np.sin(theta) * gk.imag)

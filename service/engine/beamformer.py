@@ -111,7 +111,12 @@ class BlockResult:
         Band power of every power block completed (and released) in this
         call, dB re full scale. Usually one row per block.
     power_first_sample : ndarray of int64, shape (rows,)
-        Stream index of the first sample of each power block.
+        Stream index of the first input sample of the span each power row
+        describes: the power block's start less the bulk delay D and the
+        longest band filter's delay (:attr:`Beamformer.power_delay_samples`);
+        every band of a row describes that same span. Blocks whose span
+        would start before the input began (since the start or the last
+        :meth:`reset`) give no row.
     nan_count, clip_count : int
         Non-finite samples replaced by zero, and samples with |x| >= 1, in
         this block (all channels).
@@ -203,9 +208,12 @@ class _Steering:
         pos = geometry.centred_positions_m
         gain = geometry.active_gain
         trims = geometry.active_trim_s
-        self.bands = [bandpower.BandPowerEvaluator(
-            bandpower.design_band_filter(b, samplerate_hz, beams.transition_hz), n_fft, valid)
-            for b in beams.bands_hz]
+        filters = [bandpower.design_band_filter(b, samplerate_hz, beams.transition_hz) for b in beams.bands_hz]
+        # Every band's row describes the same input span: bands with shorter filters are held back
+        # to the longest filter's delay.
+        self.band_delay = max(int(f.group_delay_samples) for f in filters)
+        self.bands = [bandpower.BandPowerEvaluator(f, n_fft, valid, self.band_delay - int(f.group_delay_samples))
+                      for f in filters]
         self.k1 = min(int(ev.bins[0]) for ev in self.bands)
         self.k2 = max(int(ev.bins[-1]) for ev in self.bands)
         power_bins = np.arange(self.k1, self.k2 + 1)
@@ -536,6 +544,12 @@ class Beamformer:
         return self._basis.pairs is not None
 
     @property
+    def power_delay_samples(self) -> int:
+        """D plus the longest band filter delay: a power row stamped ``n`` covers input samples from
+        ``n`` on, and is complete once the block ending ``power_delay_samples`` later is in."""
+        return self.bulk_delay_samples + self._steer[0].band_delay
+
+    @property
     def steering_bytes(self) -> int:
         return self._steer[0].nbytes
 
@@ -571,6 +585,7 @@ class Beamformer:
         x = np.asarray(block, dtype=np.float32)
         nan_count = clip_count = 0
         steer, n_fft = self._steer
+        delay = self.bulk_delay_samples + steer.band_delay
         frames = len(x)
         first = self._sample
         n_audio = len(steer.beams.audio_deg)
@@ -588,7 +603,8 @@ class Beamformer:
                 audio[pos:pos + b] = self._audio(spec, b, n_fft)
             self._sample += b
             pos += b
-            if b == to_boundary:
+            # A row never describes time before the input began (since the start or the last reset).
+            if b == to_boundary and self._sample - self.block_frames - delay >= self._power_origin:
                 self._pending_start.append(self._sample - self.block_frames)
                 self._pending_spec.append(spec[steer.k1:steer.k2 + 1])  # a view: spec is new every frame
                 if len(self._pending_start) >= self.power_batch_blocks:
@@ -656,7 +672,8 @@ class Beamformer:
         if not self._pending_start:
             return _empty_rows(len(steer.bands), len(steer.beams.power_deg))
         spec = np.stack(self._pending_spec)  # (K, bins from k1, rows)
-        starts = np.array(self._pending_start, np.int64)
+        # Rows are stamped with the input span they describe: block start less D and the band delay.
+        starts = np.array(self._pending_start, np.int64) - (self.bulk_delay_samples + steer.band_delay)
         self._pending_start, self._pending_spec = [], []
         y, _ = steer.power(spec, offset=steer.k1)  # (K, beams, bins); the band factors hold the lag
         out = np.empty((len(starts), len(steer.bands), y.shape[1]), np.float32)
