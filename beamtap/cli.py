@@ -149,7 +149,8 @@ def cmd_tail(args):
 def cmd_watch(args):
     from beamtap.client import watch  # noqa: PLC0415
 
-    return watch.run(args.endpoint, args.rate, args.band, args.range_db, args.ascii, args.seconds)
+    return watch.run(args.endpoint, args.rate, args.band, args.range_db, args.ascii, args.seconds, args.history_s,
+                     args.top_db)
 
 
 def cmd_ctl(args):
@@ -265,9 +266,13 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = _add(sub, "watch", cmd_watch, "live terminal view: power across the fan, peak bearing, waterfall, status")
     p.add_argument("--endpoint", default=DEFAULT_PUBLISH, help=f"service stream (default {DEFAULT_PUBLISH})")
-    p.add_argument("--rate", type=float, default=8.0, help="redraws (and waterfall rows) per second (default 8)")
+    p.add_argument("--rate", type=float, default=8.0, help="redraws per second (default 8)")
     p.add_argument("--band", type=int, default=0, help="which power band to show (0-based, default 0)")
     p.add_argument("--range-db", type=float, default=30.0, help="dynamic range shown, dB (default 30)")
+    p.add_argument("--top-db", type=float, default=None,
+                   help="fixed top of the colour scale, dB (default: follows the peak, coming down slowly)")
+    p.add_argument("--history-s", type=float, default=120.0,
+                   help="time the waterfall spans, however tall the terminal (default 120 s)")
     p.add_argument("--ascii", action="store_true", help="plain characters, no colour")
     p.add_argument("--seconds", type=float, default=None, help="quit after this many seconds")
 

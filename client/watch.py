@@ -18,16 +18,18 @@ import time
 import numpy as np
 import zmq
 
+from beamtap import palette
+from beamtap.errors import UsageError
+
 from .subscriber import Subscriber
 
 ASCII_RAMP = " .:-=+*#%@"
 UNICODE_RAMP = " ░▒▓█"
 EIGHTHS = " ▁▂▃▄▅▆▇█"
-#: 256-colour heat ramp (dark blue → cyan → yellow → red), used as cell backgrounds.
-HEAT = [17, 18, 19, 20, 21, 27, 33, 39, 45, 51, 50, 49, 48, 47, 46, 82, 118, 154, 190, 226, 220, 214, 208, 202,
-        196]
-
 BAR_ROWS = 6
+MARGIN = 9
+#: How fast the colour scale's top comes down after a loud moment, dB per second (it rises at once).
+SCALE_DECAY_DB_PER_S = 0.5
 
 
 class View:
@@ -36,49 +38,83 @@ class View:
     Parameters
     ----------
     colour : bool
-        Use 256-colour backgrounds for the waterfall and bars.
+        Use 256-colour backgrounds (beamtap's palette) for the waterfall.
     unicode : bool
         Use block characters; otherwise plain ASCII.
     range_db : float
-        Dynamic range shown below the current peak.
+        Dynamic range shown below the top of the colour scale, dB.
+    top_db : float or None
+        A fixed top of the colour scale; None adapts it slowly: it rises
+        at once to a new peak and comes down by
+        :data:`SCALE_DECAY_DB_PER_S`, so the colours of old rows keep their
+        meaning from one redraw to the next.
+    history_s : float
+        Time the waterfall spans, whatever the terminal height: each
+        waterfall line is the mean power over ``history_s / lines``.
     """
 
-    def __init__(self, colour: bool, unicode: bool, range_db: float = 30.0):
+    def __init__(self, colour: bool, unicode: bool, range_db: float = 30.0, top_db: float | None = None,
+                 history_s: float = 120.0):
         self.colour, self.unicode, self.range_db = colour, unicode, range_db
-        self.history: list[tuple[float, np.ndarray]] = []
+        self.fixed_top, self.history_s = top_db, history_s
+        self.scale_top: float | None = top_db
+        self._scale_utc: float | None = None
+        self.history: list[tuple[float, np.ndarray]] = []  # (utc, linear power), newest first
 
-    def add_row(self, utc: float, power_db: np.ndarray, keep: int = 500) -> None:
-        self.history.insert(0, (utc, np.asarray(power_db, float)))
-        del self.history[keep:]
+    def add_row(self, utc: float, power_db: np.ndarray) -> None:
+        """One averaged power row (dB) at ``utc``; rows older than ``history_s`` are forgotten."""
+        db = np.asarray(power_db, float)
+        if self.history and len(self.history[0][1]) != len(db):
+            self.history.clear()  # a new beam table: the old rows do not line up
+        self.history.insert(0, (utc, 10.0 ** (db / 10.0)))
+        while self.history and self.history[-1][0] < utc - self.history_s:
+            self.history.pop()
+        peak = float(np.max(db))
+        if self.fixed_top is None:
+            if self.scale_top is None or peak > self.scale_top:
+                self.scale_top = peak
+            elif self._scale_utc is not None:
+                self.scale_top = max(peak, self.scale_top - SCALE_DECAY_DB_PER_S * max(0.0, utc - self._scale_utc))
+            self._scale_utc = utc
 
     def _columns(self, n_beams: int, width: int) -> np.ndarray:
         return np.round(np.linspace(0, n_beams - 1, width)).astype(int)
 
-    def _level(self, db: np.ndarray, top: float) -> np.ndarray:
+    def _level(self, db: np.ndarray) -> np.ndarray:
+        top = self.scale_top if self.scale_top is not None else float(np.max(db))
         return np.clip((db - (top - self.range_db)) / self.range_db, 0.0, 1.0)
 
     def _cells(self, frac: np.ndarray) -> str:
         if self.colour:
-            idx = np.minimum((frac * (len(HEAT) - 1)).round().astype(int), len(HEAT) - 1)
-            return "".join(f"\x1b[48;5;{HEAT[i]}m " for i in idx) + "\x1b[0m"
+            return "".join(f"\x1b[48;5;{i}m " for i in palette.xterm256(frac)) + "\x1b[0m"
         ramp = UNICODE_RAMP if self.unicode else ASCII_RAMP
         return "".join(ramp[min(int(f * (len(ramp) - 1) + 0.5), len(ramp) - 1)] for f in frac)
 
+    def waterfall(self, lines: int, now_utc: float) -> list:
+        """(utc of the line's newest moment, mean power dB or None) for ``lines`` lines spanning
+        ``history_s`` back from ``now_utc``, newest first."""
+        span = self.history_s / max(lines, 1)
+        out = []
+        for r in range(lines):
+            hi, lo = now_utc - r * span, now_utc - (r + 1) * span
+            rows = [p for t, p in self.history if lo < t <= hi]
+            out.append((hi, 10.0 * np.log10(np.mean(rows, axis=0)) if rows else None))
+        return out
+
     def render(self, width: int, height: int, title: str, beams_deg: np.ndarray, latest_db: np.ndarray | None,
-               status_line: str, mirror_note: bool) -> str:
+               status_line: str, mirror_note: bool, now_utc: float | None = None) -> str:
         """The whole screen as text (cursor-home first, each line cleared)."""
-        margin = 9
-        width = max(width, margin + 20)
-        plot_w = width - margin
+        width = max(width, MARGIN + 20)
+        plot_w = width - MARGIN
         lines = [title[:width]]
         if latest_db is None or beams_deg is None or len(beams_deg) != len(latest_db):
             lines.append("waiting for power and the beam table …")
             lines += [""] * max(0, height - 3)
-            lines.append(status_line[:width])
+            lines += _wrap(status_line, width)
             return _screen([self._plain(line) for line in lines], height)
         cols = self._columns(len(latest_db), plot_w)
-        top = float(np.max(latest_db))
-        frac = self._level(latest_db[cols], top)
+        frac = self._level(latest_db[cols])
+        top = self.scale_top if self.scale_top is not None else float(np.max(latest_db))
         peak_beam = int(np.argmax(latest_db))
         peak_col = int(np.argmin(np.abs(cols - peak_beam)))
         # Bars: BAR_ROWS rows, eighth-blocks (or '#') for the fractional top.
@@ -90,7 +126,7 @@ class View:
             else:
                 row = "".join("#" if c >= 0.5 else " " for c in cell)
             label = {0: f"{top:6.1f}dB", BAR_ROWS - 1: f"{top - self.range_db:6.1f}dB"}.get(r, "")
-            lines.append(f"{label:>{margin - 1}} " + row)
+            lines.append(f"{label:>{MARGIN - 1}} " + row)
         az = beams_deg[:, 0]
         marker = [" "] * plot_w
         marker[peak_col] = "^"
@@ -101,19 +137,20 @@ class View:
         for i, ch in enumerate(text):
             if 0 <= start + i < plot_w and start + i != peak_col:
                 marker[start + i] = ch
-        lines.append(" " * margin + "".join(marker))
-        lines.append(" " * margin + _axis(az[cols], plot_w))
-        note = "  (a line array: each bearing also stands for its mirror image about the axis)" if mirror_note else ""
-        lines.append(f"{'':{margin}}waterfall, newest at top{note}"[:width])
-        rows_left = max(0, height - len(lines) - 1)
-        for utc, row in self.history[:rows_left]:
-            if len(row) != len(latest_db):
-                continue
+        lines.append(" " * MARGIN + "".join(marker))
+        lines.append(" " * MARGIN + axis(az[cols], plot_w))
+        note = " (line array: a bearing and its mirror image)" if mirror_note else ""
+        lines.append(f"{'UTC':>{MARGIN - 1}} waterfall, newest at top, {self.history_s:g} s{note}"[:width])
+        status = _wrap(status_line, width)
+        rows_left = max(0, height - len(lines) - len(status))
+        now = now_utc if now_utc is not None else (self.history[0][0] if self.history else time.time())
+        for utc, row in self.waterfall(rows_left, now):
             stamp = time.strftime("%H:%M:%S", time.gmtime(utc))
-            lines.append(f"{stamp:>{margin - 1}} " + self._cells(self._level(row[cols], top)))
-        while len(lines) < height - 1:
+            cells = self._cells(self._level(row[cols])) if row is not None else " " * plot_w
+            lines.append(f"{stamp:>{MARGIN - 1}} " + cells)
+        while len(lines) < height - len(status):
             lines.append("")
-        lines.append(status_line[:width])
+        lines += status
         return _screen([self._plain(line) for line in lines], height)
 
     def _plain(self, line: str) -> str:
@@ -123,18 +160,41 @@ class View:
         return line.replace("°", "d").replace("…", "...").encode("ascii", "replace").decode("ascii")
 
 
-def _axis(az: np.ndarray, width: int) -> str:
+def axis(az: np.ndarray, width: int) -> str:
+    """Tick marks ('|') at the columns nearest round bearings, labels beside them; a label that
+    would run past the right edge goes to the left of its mark."""
     out = [" "] * width
-    lo, hi = float(az[0]), float(az[-1])
+    lo, hi = float(np.min(az)), float(np.max(az))
     step = 45.0 if hi - lo > 90 else 15.0 if hi - lo > 30 else 5.0
-    for tick in np.arange(np.ceil(lo / step) * step, hi + 1e-9, step):
+    for tick in np.arange(np.ceil(lo / step - 1e-9) * step, hi + 1e-9, step):
         c = int(np.argmin(np.abs(az - tick)))
-        label = f"|{tick:g}°"
-        if c + len(label) > width:
-            c = width - len(label)
-        if all(ch == " " for ch in out[c:c + len(label)]):
-            out[c:c + len(label)] = list(label)
+        label = f"{tick:g}°"
+        if c + 1 + len(label) <= width:
+            cells = range(c, c + 1 + len(label))
+            text = "|" + label
+        else:
+            cells = range(c - len(label), c + 1)
+            text = label + "|"
+        if cells.start >= 0 and all(out[i] == " " for i in cells):
+            for i, ch in zip(cells, text):
+                out[i] = ch
     return "".join(out)
+
+
+def _wrap(text: str, width: int) -> list:
+    """Status text split at double spaces into lines that fit ``width``."""
+    lines, cur = [], ""
+    for part in text.split("  "):
+        part = part.strip()
+        if not part:
+            continue
+        if cur and len(cur) + 2 + len(part) > width:
+            lines.append(cur)
+            cur = part
+        else:
+            cur = f"{cur}  {part}" if cur else part
+    lines.append(cur[:width])
+    return lines
 
 
 def _screen(lines, height) -> str:
@@ -144,14 +204,14 @@ def _screen(lines, height) -> str:
 
 def _status_line(st: dict | None, last_power, now_utc: float) -> str:
     if not st:
-        return "waiting for status …   [q quits]"
+        return "waiting for status …  [q quits]"
     delay = ""
     if last_power is not None:
         delay = f"  delay {1e3 * (now_utc - last_power.time_utc):.0f} ms"
     return (f"overflows {st.get('overflows', 0)}  gaps {st.get('gaps', 0)}  lost {st.get('frames_lost', 0)} frames  "
             f"NaN {st.get('nan_samples', 0)}  clip {st.get('clipped_samples', 0)}  "
             f"block p99 {st.get('block_ms_p99', 0):.2f} ms  D {st.get('bulk_delay_samples', 0)} smp"
-            f"{delay}  dropped {st.get('messages_dropped', 0)}   [q quits]")
+            f"{delay}  dropped {st.get('messages_dropped', 0)}  [q quits]")
 
 
 def terminal_caps(force_ascii: bool) -> tuple[bool, bool]:
@@ -164,11 +224,24 @@ def terminal_caps(force_ascii: bool) -> tuple[bool, bool]:
     return colour, unicode
 
 
-def run(endpoint: str, rate_hz: float, band: int, range_db: float, force_ascii: bool, seconds: float | None) -> int:
-    colour, unicode = terminal_caps(force_ascii)
-    view = View(colour, unicode, range_db)
+def run(endpoint: str, rate_hz: float, band: int, range_db: float, force_ascii: bool, seconds: float | None,
+        history_s: float = 120.0, top_db: float | None = None) -> int:
+    for name, value in (("--rate", rate_hz), ("--range-db", range_db), ("--history-s", history_s)):
+        if not (isinstance(value, (int, float)) and np.isfinite(value) and value > 0):
+            raise UsageError(f"{name} {value!r}: expected a positive number")
+    if band < 0:
+        raise UsageError(f"--band {band}: expected a band number from 0")
+    if top_db is not None and not np.isfinite(top_db):
+        raise UsageError(f"--top-db {top_db!r}: expected a number of dB")
+    if seconds is not None and not seconds > 0:
+        raise UsageError(f"--seconds {seconds!r}: expected a positive number")
     out = sys.stdout
-    is_tty = out.isatty() and sys.stdin.isatty()
+    if not out.isatty():
+        # Not a terminal (a pipe, a file, a log): one plain line per redraw, no escape codes.
+        return _loop(endpoint, None, rate_hz, band, seconds, {"now": False}, False)
+    colour, unicode = terminal_caps(force_ascii)
+    view = View(colour, unicode, range_db, top_db, history_s)
+    is_tty = sys.stdin.isatty()
     saved = None
     if is_tty:
         import termios  # noqa: PLC0415
@@ -198,8 +271,15 @@ def run(endpoint: str, rate_hz: float, band: int, range_db: float, force_ascii: 
         signal.signal(signal.SIGTERM, old_term)
 
 
+def _check_band(band: int, beams: dict | None) -> None:
+    bands = (beams or {}).get("bands_hz") or []
+    if bands and band >= len(bands):
+        raise UsageError(f"--band {band}: the service forms {len(bands)} band{'s' if len(bands) > 1 else ''} "
+                         f"(0{f' to {len(bands) - 1}' if len(bands) > 1 else ''})")
+
+
 def _loop(endpoint, view, rate_hz, band, seconds, stop, is_tty) -> int:
-    period = 1.0 / max(rate_hz, 0.5)
+    period = 1.0 / rate_hz
     end = None if seconds is None else time.monotonic() + seconds
     sums, count = None, 0
     latest, last_power, status = None, None, None
@@ -221,8 +301,10 @@ def _loop(endpoint, view, rate_hz, band, seconds, stop, is_tty) -> int:
             while sub.socket in events or sub.socket.poll(0):
                 events = {}
                 f = sub.recv()
-                if f.topic == "power" and f.data is not None:
-                    row = f.data[min(band, f.data.shape[0] - 1)]
+                if f.topic == "beams":
+                    _check_band(band, f.header)
+                elif f.topic == "power" and f.data is not None and band < f.data.shape[0]:
+                    row = f.data[band]
                     lin = 10.0 ** (row / 10.0)
                     sums = lin if sums is None or len(sums) != len(lin) else sums + lin
                     count = 1 if sums is lin else count + 1
@@ -230,19 +312,27 @@ def _loop(endpoint, view, rate_hz, band, seconds, stop, is_tty) -> int:
                 elif f.topic == "status":
                     status = f.header
             if time.monotonic() >= next_draw:
+                beams = sub.beams
+                az = np.asarray(beams["power_deg"]) if beams else None
+                if view is None:  # plain text
+                    if latest is not None and az is not None and len(az) == len(latest):
+                        i = int(np.argmax(latest))
+                        sys.stdout.write(f"{time.strftime('%Y-%m-%dT%H:%M:%SZ', time.gmtime(last_power.time_utc))} "
+                                         f"peak {az[i][0]:.1f} deg {latest[i]:.1f} dB band {band}\n")
+                        sys.stdout.flush()
+                    next_draw = time.monotonic() + period
+                    continue
                 if sums is not None and count:
                     view.add_row(last_power.time_utc, 10.0 * np.log10(sums / count))
                     sums, count = None, 0
-                beams = sub.beams
-                az = np.asarray(beams["power_deg"]) if beams else None
                 bands = beams.get("bands_hz") if beams else None
-                band_txt = f"band {bands[min(band, len(bands) - 1)][0]:g}-{bands[min(band, len(bands) - 1)][1]:g} Hz" \
-                    if bands else ""
+                band_txt = f"band {bands[band][0]:g}-{bands[band][1]:g} Hz" if bands and band < len(bands) else ""
                 title = f"beamtap watch  {endpoint}  {band_txt}  {beams.get('array_kind', '') if beams else ''} array"
-                size = shutil.get_terminal_size((100, 30))
-                screen = view.render(size.columns, size.lines, title, az, latest, _status_line(status, last_power,
-                                                                                                time.time()),
-                                     bool(beams and beams.get("array_kind") == "line"))
+                size = shutil.get_terminal_size((80, 30))
+                screen = view.render(size.columns, size.lines, title, az, latest,
+                                     _status_line(status, last_power, time.time()),
+                                     bool(beams and beams.get("array_kind") == "line"),
+                                     now_utc=last_power.time_utc if last_power is not None else None)
                 sys.stdout.write(screen)
                 sys.stdout.flush()
                 next_draw = time.monotonic() + period

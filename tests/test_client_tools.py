@@ -245,3 +245,52 @@ def test_malformed_endpoints_are_one_line_errors(args):
     r = beamtap(*args)
     assert r.returncode == 2
     assert "endpoint" in r.stderr and "Traceback" not in r.stderr
+
+
+def test_watch_view_fits_80_columns_with_true_ticks_and_a_steady_scale():
+    from beamtap.client.watch import MARGIN, View, axis
+
+    az = np.column_stack([np.arange(0.0, 181.0, 1.0), np.zeros(181)])
+    # ticks: the '|' of 0°, 90° and 180° on the columns whose bearing is nearest (common practice)
+    cols = np.round(np.linspace(0, 180, 71)).astype(int)
+    text = axis(az[cols, 0], 71)
+    for tick in (0, 90, 180):
+        c = int(np.argmin(np.abs(az[cols, 0] - tick)))
+        assert text[c] == "|", (tick, text)
+        assert f"{tick}°" in text
+    view = View(colour=False, unicode=True, range_db=30.0, history_s=120.0)
+    loud = np.full(181, -60.0)
+    loud[90] = -10.0
+    t0 = 1.8e9
+    view.add_row(t0, loud)
+    quiet = np.full(181, -60.0)
+    quiet[90] = -40.0
+    view.add_row(t0 + 1.0, quiet)
+    assert view.scale_top == pytest.approx(-10.0 - 0.5)  # down by 0.5 dB in 1 s, not to the new peak
+    screen = view.render(80, 30, "title " * 30, az, quiet, "overflows 0  gaps 0  lost 0 frames  " * 4, True,
+                         now_utc=t0 + 1.0)
+    lines = [seg.split("\x1b[")[0] for seg in screen.split("\x1b[2K")[1:]]  # each line's text
+    assert all(len(ln) <= 80 for ln in lines), max(lines, key=len)
+    assert "UTC" in screen and "gaps 0" in screen
+    # the waterfall spans 120 s over the lines left, whatever the height
+    rows = view.waterfall(10, t0 + 1.0)
+    assert len(rows) == 10 and rows[0][1] is not None and rows[-1][1] is None
+    assert MARGIN + 71 == 80
+
+
+def test_watch_to_a_pipe_is_plain_text(svc):
+    r = beamtap("watch", "--endpoint", svc.publish, "--seconds", "2", "--rate", "4")
+    assert r.returncode == 0, r.stderr
+    assert "\x1b" not in r.stdout
+    peaks = [float(m) for m in re.findall(r"peak (-?\d+\.\d) deg", r.stdout)]
+    assert peaks and np.median(peaks) == pytest.approx(52.0, abs=2.0)
+    assert re.search(r"^\d{4}-\d\d-\d\dT\d\d:\d\d:\d\dZ peak", r.stdout, re.M)
+
+
+@pytest.mark.parametrize("args, words", [(["--band", "5"], "--band 5: the service forms 1 band"),
+                                         (["--range-db", "-3"], "--range-db -3"),
+                                         (["--rate", "0"], "--rate 0"),
+                                         (["--history-s", "nan"], "--history-s nan")])
+def test_watch_options_are_checked(svc, args, words):
+    r = beamtap("watch", "--endpoint", svc.publish, "--seconds", "3", *args)
+    assert r.returncode == 2 and words in r.stderr and "Traceback" not in r.stderr, r.stderr
