@@ -184,7 +184,8 @@ def cmd_picture(args):
         data = picture.from_live(args.endpoint, args.seconds, args.band)
     else:
         data = picture.from_csv(args.power_csv, args.band)
-    picture.render(*data, args.out, args.range_db)
+    times, bearings, power, title, utc, marks = data
+    picture.render(times, bearings, power, title, args.out, args.range_db, utc=utc, marks=marks)
     print(f"wrote {args.out}: {len(data[2])} rows x {len(data[1])} bearings")
 
 
@@ -309,13 +310,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seconds", type=float, default=None, help="stop after this many seconds")
 
     p = _add(sub, "picture", cmd_picture, "bearing-against-time image (PNG) from power.csv or a live capture")
-    p.add_argument("power_csv", nargs="?", default=None, help="power.csv written by 'beamtap process'")
+    p.add_argument("power_csv", nargs="?", default=None,
+                   help="a power table: process's power.csv, a recorder's power-*.csv, or a session or output folder")
     p.add_argument("--live", action="store_true", help="capture from a running service instead")
     p.add_argument("--seconds", type=float, default=None, help="with --live: how long to capture")
     p.add_argument("--endpoint", default=DEFAULT_PUBLISH, help=f"with --live: service stream (default {DEFAULT_PUBLISH})")
     p.add_argument("--band", type=int, default=0, help="which band (0-based)")
     p.add_argument("--range-db", type=float, default=30.0, help="colour range below the maximum, dB")
-    p.add_argument("--out", required=True, help="output PNG")
+    p.add_argument("--out", required=True, help="output picture: .png, .svg or .pdf")
 
     p = _add(sub, "record", cmd_record, "record a service's stream (from any machine) into a session folder")
     p.add_argument("--out", required=True, help="new session folder")

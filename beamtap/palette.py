@@ -73,3 +73,16 @@ def xterm256(level) -> np.ndarray:
     """256-colour terminal index (16..255) of each level in 0..1."""
     x = np.clip(np.asarray(level, float), 0.0, 1.0)
     return _RAMP[np.round(x * (len(_RAMP) - 1)).astype(int)]
+
+
+def hex_colour(level: float) -> str:
+    """``#rrggbb`` of one level in 0..1."""
+    r, g, b = (int(round(255 * v)) for v in rgb(level))
+    return f"#{r:02x}{g:02x}{b:02x}"
+
+
+def colormap(name: str = "beamtap"):
+    """The scale as a matplotlib colormap (needs the plot extra)."""
+    from matplotlib.colors import LinearSegmentedColormap  # noqa: PLC0415
+
+    return LinearSegmentedColormap.from_list(name, [tuple(c) for c in _RGB], N=256)

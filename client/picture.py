@@ -2,8 +2,10 @@
 
 From a power table (the ``power.csv`` that ``beamtap process`` writes, a
 recorder's ``power-*.csv`` segment, or a whole session folder; see
-:mod:`beamtap.powertable`), or from a live capture of the stream. Bearing runs across, time runs down, colour is band power in dB re
-full scale with a colour bar; the title names the array and the band.
+:mod:`beamtap.powertable`), or from a live capture of the stream. Bearing runs across, time runs up (newest at the top, as in
+``watch``) in UTC when the rows carry it, marks are labelled lines, colour is
+band power in dB re full scale (beamtap's palette) with a colour bar; the
+title names the array and the band.
 Needs the plotting extra (``pip install 'beamtap[plot]'``).
 """
 
@@ -15,7 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
-from beamtap import powertable
+from beamtap import palette, powertable
 from beamtap.errors import UsageError
 
 from .subscriber import Subscriber
@@ -33,15 +35,20 @@ def from_csv(power_csv, band: int = 0):
     if not 0 <= band < n_bands:
         raise UsageError(f"--band {band}: {path} has {n_bands} band{'s' if n_bands > 1 else ''} "
                          f"(0{f' to {n_bands - 1}' if n_bands > 1 else ''})")
-    fs = _samplerate(path)
-    times = (table.first_sample - table.first_sample[0]) / fs
+    utc = bool(np.all(np.isfinite(table.time_utc)))
+    times = table.time_utc if utc else (table.first_sample - table.first_sample[0]) / _samplerate(path)
     lo, hi = table.bands_hz[band]
     title = f"beamtap power, band {lo:g}-{hi:g} Hz"
-    summary = (path if path.is_dir() else path.parent) / "summary.json"
-    if summary.exists():
-        s = json.loads(summary.read_text())["summary"]
+    folder = path if path.is_dir() else path.parent
+    if (folder / "summary.json").exists():
+        s = json.loads((folder / "summary.json").read_text())["summary"]
         title = f"{s['array_kind']} array, {s['active_sensors']} sensors, band {lo:g}-{hi:g} Hz"
-    return times, table.power_deg[:, 0], table.power_db[:, band, :], title
+    marks = []
+    if utc and (folder / "manifest.jsonl").exists():
+        from beamtap.session import read_manifest  # noqa: PLC0415
+
+        marks = [(float(r["utc"]), str(r.get("text", ""))) for r in read_manifest(folder) if r.get("type") == "mark"]
+    return times, table.power_deg[:, 0], table.power_db[:, band, :], title, utc, marks
 
 
 def _samplerate(path: Path) -> float:
@@ -78,18 +85,24 @@ def from_live(endpoint: str, seconds: float, band: int = 0):
     t = np.array([times[i] for i in keep])
     b = beams["bands_hz"][min(band, len(beams["bands_hz"]) - 1)]
     title = f"{beams.get('array_kind', '')} array (live {endpoint}), band {b[0]:g}-{b[1]:g} Hz"
-    return t - t[0], np.array(beams["power_deg"])[:, 0], data, title
+    return t, np.array(beams["power_deg"])[:, 0], data, title, True, []
 
 
 #: Picture formats by suffix, and the metadata key that carries the axes' layout in each.
 _FORMATS = {".png": "Description", ".svg": "Description", ".pdf": "Subject"}
 
 
-def render(times_s, bearings_deg, power_db, title: str, out, range_db: float = 30.0) -> dict:
-    """Write the PNG; returns the plot area in pixels and the axes' data limits.
+def render(times, bearings_deg, power_db, title: str, out, range_db: float = 30.0, utc: bool = False,
+           marks=()) -> dict:
+    """Write the picture (PNG, SVG or PDF by the suffix); returns the plot area in pixels and the
+    axes' data limits.
 
-    The same dict is stored in the PNG's ``Description`` text so a program
-    reading the image back can map pixels to bearing and time.
+    Newest at the top, as in ``watch``; the time axis in UTC when ``utc``
+    (``times`` are POSIX seconds), else in seconds from the first row.
+    ``marks`` (UTC, text) are drawn as labelled lines. Colours are
+    beamtap's palette (:mod:`beamtap.palette`). The returned dict is stored
+    in the picture's metadata so a program reading it back can map pixels
+    to bearing and time.
     """
     suffix = Path(str(out)).suffix.lower()
     if suffix not in _FORMATS:
@@ -98,20 +111,42 @@ def render(times_s, bearings_deg, power_db, title: str, out, range_db: float = 3
         import matplotlib  # noqa: PLC0415
 
         matplotlib.use("Agg")
+        import matplotlib.dates as mdates  # noqa: PLC0415
         import matplotlib.pyplot as plt  # noqa: PLC0415
     except ImportError:
         raise UsageError("pictures need the plotting extra: pip install 'beamtap[plot]'") from None
     if len(power_db) == 0:
         raise UsageError("no power rows to draw")
+    if not (np.isfinite(range_db) and range_db > 0):
+        raise UsageError(f"--range-db {range_db!r}: expected a positive number of dB")
+    times = np.asarray(times, float)
     top = float(np.nanmax(power_db))
     fig, ax = plt.subplots(figsize=(9, 6), dpi=100)
     order = np.argsort(bearings_deg)
     b = np.asarray(bearings_deg)[order]
-    img = ax.imshow(np.asarray(power_db)[:, order], aspect="auto", origin="upper", cmap="viridis",
+    t0, t1 = float(times[0]), float(times[-1])
+    to_axis = (lambda t: mdates.date2num(np.datetime64(int(round(t * 1e6)), "us"))) if utc else (lambda t: t - t0)
+    img = ax.imshow(np.asarray(power_db)[:, order], aspect="auto", origin="lower", cmap=palette.colormap(),
                     vmin=top - range_db, vmax=top, interpolation="nearest",
-                    extent=[b[0], b[-1], float(times_s[-1]), float(times_s[0])])
+                    extent=[b[0], b[-1], to_axis(t0), to_axis(t1) if t1 > t0 else to_axis(t0) + 1e-6])
+    if utc:
+        if t1 - t0 < 60:  # short spans: tenths of a second, or neighbouring ticks would read alike
+            from matplotlib.ticker import FuncFormatter  # noqa: PLC0415
+
+            ax.yaxis.set_major_formatter(FuncFormatter(
+                lambda v, pos: mdates.num2date(v).strftime("%H:%M:%S.%f")[:-5]))
+        else:
+            ax.yaxis.set_major_formatter(mdates.DateFormatter("%H:%M:%S"))
+        ax.set_ylabel(f"time (UTC), {time.strftime('%Y-%m-%d', time.gmtime(t0))}; newest at top")
+    else:
+        ax.set_ylabel("time from the first row (s); newest at top")
+    for when, text in marks:
+        if t0 <= when <= t1:
+            y = to_axis(when)
+            ax.axhline(y, color="white", linewidth=1.0, linestyle="--")
+            ax.text(b[0], y, f" {text}", color="white", fontsize=8, va="bottom", ha="left",
+                    bbox={"facecolor": "black", "alpha": 0.5, "linewidth": 0})
     ax.set_xlabel("bearing (deg)")
-    ax.set_ylabel("time (s)")
     ax.set_title(title, fontsize=10)
     fig.colorbar(img, ax=ax, label="band power (dB re full scale)")
     fig.tight_layout()
@@ -119,7 +154,8 @@ def render(times_s, bearings_deg, power_db, title: str, out, range_db: float = 3
     bbox = ax.get_window_extent()
     height = fig.canvas.get_width_height()[1]
     info = {"axes_px": [bbox.x0, height - bbox.y1, bbox.x1, height - bbox.y0],
-            "bearing_deg": [float(b[0]), float(b[-1])], "time_s": [float(times_s[0]), float(times_s[-1])]}
+            "bearing_deg": [float(b[0]), float(b[-1])], "time": [t1, t0], "time_axis": "utc" if utc else "seconds",
+            "newest": "top"}
     try:
         fig.savefig(out, metadata={_FORMATS[suffix]: json.dumps(info)})
     except OSError as exc:

@@ -131,7 +131,7 @@ def _brightest_bearing(png):
     info = json.loads(im.info["Description"])
     x0, y0, x1, y1 = (int(round(v)) for v in info["axes_px"])
     rgb = np.asarray(im.convert("RGB"), float)[y0 + 2:y1 - 2, x0 + 2:x1 - 2]
-    luminance = rgb @ np.array([0.2126, 0.7152, 0.0722])  # viridis: brightness rises with power
+    luminance = rgb @ np.array([0.2126, 0.7152, 0.0722])  # beamtap palette: lightness rises with power
     col = int(np.argmax(luminance.mean(axis=0)))
     b0, b1 = info["bearing_deg"]
     return b0 + (col + 0.5) / luminance.shape[1] * (b1 - b0)

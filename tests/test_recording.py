@@ -391,6 +391,8 @@ def test_one_power_table_format_from_recorder_and_process_through_picture(tmp_pa
     with running_service(tmp_path, config(rec, segment_s=30.0, what='["raw", "power"]')) as svc:
         with Controller(svc.control) as ctl:
             ctl.record("start")
+            wait_recording(ctl, int(1.5 * FS))
+            mark = ctl.mark("buoy in")
             wait_recording(ctl, 3 * FS)
             ctl.record("stop")
     session = rec / os.listdir(rec)[0]
@@ -415,3 +417,15 @@ def test_one_power_table_format_from_recorder_and_process_through_picture(tmp_pa
         r = _run_cli("picture", source, "--out", png)
         assert r.returncode == 0, (source, r.stderr)
         assert png.stat().st_size > 1000
+    # the session's picture: UTC time axis, newest at the top, the mark drawn as a light line
+    from PIL import Image
+
+    im = Image.open(tmp_path / f"{session.name}.png")
+    info = json.loads(im.info["Description"])
+    assert info["time_axis"] == "utc" and info["newest"] == "top" and info["time"][0] > info["time"][1]
+    x0, y0, x1, y1 = info["axes_px"]
+    t_top, t_bottom = info["time"]
+    y = int(round(y0 + (t_top - mark["utc"]) / (t_top - t_bottom) * (y1 - y0)))
+    rgb = np.asarray(im.convert("RGB"), float)
+    band = rgb[y - 1:y + 2, int(x0) + 40:int(x1) - 5]
+    assert np.max(band.min(axis=2).mean(axis=1)) > 200  # a near-white dashed line across the plot
