@@ -131,13 +131,20 @@ def cmd_devices(args):
 
     sd = load_sounddevice()
     devices = sd.query_devices()
-    default_in = sd.default.device[0] if isinstance(sd.default.device, (list, tuple)) else sd.default.device
+    if not any(d["max_input_channels"] > 0 for d in devices):
+        print("no input devices found (is the sound card connected and its driver loaded?)")
+        return 0
+    try:
+        default_in = sd.query_devices(kind="input")["index"]
+    except Exception:  # PortAudio names no default input
+        default_in = None
     print(f"{'index':>5}  {'in':>3}  {'out':>3}  {'rate Hz':>8}  name")
     for i, d in enumerate(devices):
         mark = "*" if i == default_in else " "
         print(f"{i:>4}{mark}  {d['max_input_channels']:>3}  {d['max_output_channels']:>3}  "
               f"{d['default_samplerate']:>8g}  {d['name']}")
-    print("(* default input; [input] device takes the name or the index)")
+    print("(* default input, used when [input] has no device; [input] device takes the name or the index)"
+          if default_in is not None else "(no default input device; name one in [input] device)")
 
 
 def cmd_tail(args):
@@ -170,7 +177,7 @@ def cmd_listen(args):
 
     device = int(args.device) if args.device is not None and args.device.isdigit() else args.device
     return listen.run(args.endpoint, args.control, args.beam, args.look, device, args.gain_db, args.limit_db,
-                      args.buffer_ms, args.seconds)
+                      args.buffer_ms, args.seconds, args.keep)
 
 
 def cmd_picture(args):
@@ -281,25 +288,33 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--control", default=DEFAULT_CONTROL, help=f"service control socket (default {DEFAULT_CONTROL})")
     p.add_argument("--timeout", type=float, default=5.0, help="seconds to wait for a reply (default 5)")
     p.add_argument("--json", action="store_true", help="print the reply as JSON")
+    # The same options after the subcommand too ('ctl status --timeout 2'); there they override.
+    after = _Parser(add_help=False)
+    after.add_argument("--control", default=argparse.SUPPRESS, help=argparse.SUPPRESS)
+    after.add_argument("--timeout", type=float, default=argparse.SUPPRESS, help=argparse.SUPPRESS)
+    after.add_argument("--json", action="store_true", default=argparse.SUPPRESS, help=argparse.SUPPRESS)
     csub = p.add_subparsers(dest="what", metavar="WHAT", required=True, parser_class=_Parser)
-    csub.add_parser("status", help="counters: overflows, gaps, frames lost, block time, CPU, drops")
-    csub.add_parser("config", help="the running config as TOML")
-    b = csub.add_parser("beams", help="show the beams, or change them (takes effect at the next block)")
+    csub.add_parser("status", help="counters: overflows, gaps, frames lost, block time, CPU, drops", parents=[after])
+    csub.add_parser("config", help="the running config as TOML", parents=[after])
+    b = csub.add_parser("beams", help="show the beams, or change them (takes effect at the next block)",
+                        parents=[after])
     b.add_argument("--fan", metavar="FROM,TO,STEP", help="power fan in degrees")
     b.add_argument("--audio", nargs="+", metavar="AZ[,EL]", help="audio beam directions")
     b.add_argument("--shading", choices=["uniform", "hann", "hamming", "chebyshev", "taylor"])
     b.add_argument("--band", metavar="LOW,HIGH", help="power band in Hz")
     b.add_argument("--set-json", metavar="JSON", help="any [beams] keys as a JSON object")
-    r = csub.add_parser("record", help="start, stop or show recording")
+    r = csub.add_parser("record", help="start, stop or show recording", parents=[after])
     r.add_argument("action", choices=["start", "stop", "status"])
     r.add_argument("--what", dest="kinds", nargs="+", choices=["raw", "audio", "power"], help="what to record")
     r.add_argument("--label", default=None, help="a label for the session")
-    m = csub.add_parser("mark", help="add an event mark to the recording")
+    m = csub.add_parser("mark", help="add an event mark to the recording", parents=[after])
     m.add_argument("text", nargs="+", help="the mark's text")
 
     p = _add(sub, "listen", cmd_listen, "play one audio beam to an output device (starts quiet, hard-limited)")
     p.add_argument("--endpoint", default=DEFAULT_PUBLISH, help=f"service stream (default {DEFAULT_PUBLISH})")
-    p.add_argument("--control", default=DEFAULT_CONTROL, help="control socket, for --look")
+    p.add_argument("--control", default=None,
+                   help="control socket, for --look (default: the --endpoint host with the default control port)")
+    p.add_argument("--keep", action="store_true", help="with --look: leave the new audio beam in place on exit")
     p.add_argument("--beam", type=int, default=0, help="audio beam index, 0-based (default 0)")
     p.add_argument("--look", type=_look, default=None, metavar="AZ[,EL]",
                    help="first point audio beam --beam toward this direction (through the control socket)")

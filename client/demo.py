@@ -34,7 +34,9 @@ def run(rate_hz: float, force_ascii: bool, seconds: float | None) -> int:
                 raise UsageError("demo: the service would not start: "
                                  + open(os.path.join(folder, "service.log")).read().strip().splitlines()[-1])
         sys.stderr.write(f"demo: service publishing on {endpoints['publish']}, control on {endpoints['control']}; "
-                         f"try 'beamtap listen --beam 1' in another terminal (start with the volume low)\n")
+                         f"try 'beamtap listen --endpoint {endpoints['publish']} --beam 1' or 'beamtap ctl "
+                         f"--control {endpoints['control']} status' in another terminal (start listening with the "
+                         "volume low)\n")
         try:
             return watch.run(endpoints["publish"], rate_hz, 0, 30.0, force_ascii, seconds)
         finally:

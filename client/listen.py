@@ -17,7 +17,7 @@ import numpy as np
 
 from beamtap.errors import UsageError, load_sounddevice
 
-from .subscriber import Controller, ServiceError, Subscriber
+from .subscriber import Controller, ServiceError, Subscriber, control_for
 
 CAUTION = ("CAUTION: beam audio can be loud. Put headphones on only after starting with the volume low; "
            "beamtap limits its own output to {limit:g} dBFS, but your device and amplifier can still be loud.")
@@ -104,23 +104,39 @@ class Limiter:
         return y.astype(np.float32)
 
 
-def run(endpoint: str, control: str, beam: int, look, device, gain_db: float, limit_db: float, buffer_ms: float,
-        seconds: float | None) -> int:
+def run(endpoint: str, control: str | None, beam: int, look, device, gain_db: float, limit_db: float,
+        buffer_ms: float, seconds: float | None, keep: bool = False) -> int:
     if limit_db > 0:
         raise UsageError(f"--limit-db: got {limit_db:g}, expected 0 dBFS or below")
     if gain_db > 20:
         raise UsageError(f"--gain-db: got {gain_db:g}, expected at most +20 dB")
     sys.stderr.write(CAUTION.format(limit=limit_db) + "\n")
+    control = control or control_for(endpoint)
+    previous = None
     if look is not None:
         with Controller(control) as ctl:
             try:
-                current = ctl.beams()["beams"]["audio_deg"]
-                audio = list(current) + [[0.0, 0.0]] * max(0, beam + 1 - len(current))
+                previous = ctl.beams()["beams"]["audio_deg"]
+                audio = list(previous) + [[0.0, 0.0]] * max(0, beam + 1 - len(previous))
                 audio[beam] = [float(look[0]), float(look[1])]
                 ctl.beams(set={"audio_deg": audio})
             except ServiceError as exc:
                 raise UsageError(f"--look: {exc}") from None
-        sys.stderr.write(f"listen: audio beam {beam} now looks toward {look[0]:g}°/{look[1]:g}°\n")
+        sys.stderr.write(f"listen: audio beam {beam} now looks toward {look[0]:g}°/{look[1]:g}° "
+                         f"({'kept after listen ends' if keep else 'restored when listen ends'})\n")
+    try:
+        return _play(endpoint, beam, device, gain_db, limit_db, buffer_ms, seconds)
+    finally:
+        if previous is not None and not keep:
+            try:
+                with Controller(control) as ctl:
+                    ctl.beams(set={"audio_deg": previous})
+                sys.stderr.write("listen: the audio beams are as they were before\n")
+            except ServiceError as exc:
+                sys.stderr.write(f"listen: could not restore the audio beams: {exc}\n")
+
+
+def _play(endpoint, beam, device, gain_db, limit_db, buffer_ms, seconds) -> int:
     sd = load_sounddevice()
     with Subscriber(endpoint, topics=["audio"], timeout_s=10.0) as sub:
         try:

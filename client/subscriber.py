@@ -23,6 +23,16 @@ DEFAULT_PUBLISH = "tcp://127.0.0.1:5560"
 DEFAULT_CONTROL = "tcp://127.0.0.1:5561"
 
 
+def control_for(endpoint: str) -> str:
+    """The control endpoint of the service publishing on ``endpoint``: the same host with the default
+    control port (``tcp://boat.local:5560`` -> ``tcp://boat.local:5561``). Other transports cannot
+    be guessed: pass the control endpoint explicitly."""
+    default_port = DEFAULT_CONTROL.rsplit(":", 1)[1]
+    if endpoint.startswith("tcp://") and ":" in endpoint[6:]:
+        return endpoint.rsplit(":", 1)[0] + ":" + default_port
+    return DEFAULT_CONTROL
+
+
 class EndpointError(ValueError):
     """An endpoint ZeroMQ cannot use (malformed address, unknown transport)."""
 
@@ -65,6 +75,24 @@ class Frame:
     gap: bool = False
     missed_messages: int = 0
     beams: dict | None = field(default=None, repr=False)
+
+    def peak(self, band: int = 0) -> tuple:
+        """The strongest power beam: ``((azimuth_deg, elevation_deg), level_db)`` in ``band``.
+
+        Uses the beam table the message was formed with (``frame.beams``);
+        raises ``ValueError`` for a message that is not ``power``, a band
+        it does not have, or before the matching beam table has arrived.
+        """
+        if self.topic != "power" or self.data is None:
+            raise ValueError(f"peak(): a {self.topic!r} message has no beam powers")
+        if not 0 <= band < self.data.shape[0]:
+            raise ValueError(f"peak(band={band}): the message has {self.data.shape[0]} band(s)")
+        table = self.beams
+        if table is None or table.get("beam_table") != self.header.get("beam_table"):
+            raise ValueError("peak(): the beam table of this message has not arrived yet (subscribe to 'beams')")
+        i = int(np.argmax(self.data[band]))
+        az, el = table["power_deg"][i]
+        return (float(az), float(el)), float(self.data[band, i])
 
     def __getattr__(self, name):
         # Header keys as attributes: frame.first_sample, frame.time_utc, ...
@@ -220,8 +248,9 @@ class Controller:
             # A REQ socket that lost its reply cannot be reused: start afresh next time.
             sock.close(linger=0)
             self._sock = None
-            raise ServiceError(f"no reply from {self.endpoint} within {self.timeout_s:g} s "
-                               f"(is a beamtap service listening there?)")
+            raise ServiceError(f"no reply from {self.endpoint} within {self.timeout_s:g} s: the service may "
+                               "still be busy (a large beam change takes a few seconds; try a longer --timeout), "
+                               "or nothing is listening there")
         reply = protocol.unpack(sock.recv())
         if not isinstance(reply, dict) or not reply.get("ok"):
             raise ServiceError(reply.get("error", "malformed reply") if isinstance(reply, dict) else

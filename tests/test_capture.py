@@ -280,6 +280,9 @@ def test_devices_lists_the_virtual_card(virtual_card):
     line = next(ln for ln in r.stdout.splitlines() if ln.endswith("arraycap"))
     index, inputs = line.split()[:2]
     assert int(inputs.rstrip("*")) >= N_CH
+    # exactly one device starred as the default input, and the legend says what the star means
+    starred = [ln for ln in r.stdout.splitlines() if ln[:6].rstrip().endswith("*")]
+    assert len(starred) == 1 and "* default input" in r.stdout
 
 
 def test_file_source_as_fast_as_possible(tmp_path):

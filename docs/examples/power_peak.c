@@ -72,7 +72,8 @@ static void on_beams(const msgpack_object *h) {
     bearing_table = as_int(id);
 }
 
-static void on_power(const msgpack_object *h, const unsigned char *payload, size_t size) {
+/* Prints the strongest beam of one power message; returns 1 if it printed a line. */
+static int on_power(const msgpack_object *h, const unsigned char *payload, size_t size) {
     const msgpack_object *dtype = map_get(h, "dtype"), *shape = map_get(h, "shape");
     const msgpack_object *first = map_get(h, "first_sample"), *seq = map_get(h, "seq");
     const msgpack_object *table = map_get(h, "beam_table"), *gap = map_get(h, "gap");
@@ -80,12 +81,12 @@ static void on_power(const msgpack_object *h, const unsigned char *payload, size
         memcmp(dtype->via.str.ptr, "<f4", 3) != 0 || !shape || shape->type != MSGPACK_OBJECT_ARRAY ||
         shape->via.array.size != 2 || !first || !seq || !table) {
         fprintf(stderr, "power_peak: unexpected power header\n");
-        return;
+        return 0;
     }
     long long bands = as_int(&shape->via.array.ptr[0]), beams = as_int(&shape->via.array.ptr[1]);
     if (bands < 1 || beams < 1 || (size_t)(bands * beams * 4) != size) {
         fprintf(stderr, "power_peak: payload of %zu bytes does not match shape\n", size);
-        return;
+        return 0;
     }
     long best = 0;
     float best_db = le_float(payload);
@@ -94,13 +95,13 @@ static void on_power(const msgpack_object *h, const unsigned char *payload, size
         if (v > best_db) { best_db = v; best = b; }
     }
     int gap_flag = gap && gap->type == MSGPACK_OBJECT_BOOLEAN && gap->via.boolean;
-    if (bearing_table == as_int(table) && best < n_bearings)
-        printf("seq=%lld first_sample=%lld beam=%ld bearing_deg=%.1f power_db=%.2f gap=%d\n", as_int(seq),
-               as_int(first), best, bearing_deg[best], best_db, gap_flag);
-    else
-        printf("seq=%lld first_sample=%lld beam=%ld bearing_deg=? power_db=%.2f gap=%d\n", as_int(seq),
-               as_int(first), best, best_db, gap_flag);
+    /* Bearings only from the beam table this message was formed with: until it arrives (it is
+       published once a second and on every change), the message is skipped, not printed half. */
+    if (bearing_table != as_int(table) || best >= n_bearings) return 0;
+    printf("seq=%lld first_sample=%lld beam=%ld bearing_deg=%.1f power_db=%.2f gap=%d\n", as_int(seq),
+           as_int(first), best, bearing_deg[best], best_db, gap_flag);
     fflush(stdout);
+    return 1;
 }
 
 int main(int argc, char **argv) {
@@ -137,8 +138,7 @@ int main(int argc, char **argv) {
                 } else if (zmq_msg_size(&part[0]) == 5 && memcmp(zmq_msg_data(&part[0]), "beams", 5) == 0) {
                     on_beams(&up.data);
                 } else if (zmq_msg_size(&part[0]) == 5 && memcmp(zmq_msg_data(&part[0]), "power", 5) == 0) {
-                    on_power(&up.data, zmq_msg_data(&part[2]), zmq_msg_size(&part[2]));
-                    printed++;
+                    printed += on_power(&up.data, zmq_msg_data(&part[2]), zmq_msg_size(&part[2]));
                 }
             }
             msgpack_unpacked_destroy(&up);
