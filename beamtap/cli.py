@@ -15,9 +15,10 @@ for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_var, "1")
 
 import argparse  # noqa: E402
+import math  # noqa: E402
 import sys  # noqa: E402
 
-from beamtap import __version__  # noqa: E402
+from beamtap import __version__, outputs  # noqa: E402
 from beamtap.errors import UsageError  # noqa: E402
 
 BUILTIN = "builtin:demo"
@@ -65,22 +66,32 @@ def _look(text: str):
         parts = [float(p) for p in text.split(",")]
     except ValueError:
         parts = []
-    if len(parts) not in (1, 2):
+    if len(parts) not in (1, 2) or not all(math.isfinite(p) for p in parts):
         raise argparse.ArgumentTypeError(f"got {text!r}, expected AZ or AZ,EL in degrees")
-    return (parts[0], parts[1] if len(parts) == 2 else 0.0)
+    az, el = parts[0], parts[1] if len(parts) == 2 else 0.0
+    if not (-360.0 <= az <= 360.0 and -90.0 <= el <= 90.0):
+        raise argparse.ArgumentTypeError(f"got {text!r}, expected azimuth from -360 to 360° and elevation from "
+                                         "-90 to 90°")
+    return (az, el)
 
 
 # ---- subcommands ------------------------------------------------------------
 def cmd_check(args):
     from beamtap.service import offline  # noqa: PLC0415
 
-    print(offline.check_text(load_config(args.config)))
+    config = load_config(args.config)
+    print(offline.check_text(config))
+    problems = offline.check_problems(config)
+    for line in problems:
+        sys.stderr.write(f"beamtap check: error: {config.where}: {line}\n")
+    return 2 if problems else 0
 
 
 def cmd_simulate(args):
     from beamtap.service import offline  # noqa: PLC0415
 
     config = load_config(args.config)
+    outputs.check_file(args.out, args.overwrite)
     frames = offline.simulate(config, args.seconds, args.out)
     print(f"wrote {args.out}: {frames} frames x {config.geometry.n_input_channels} channels "
           f"at {config.input.samplerate_hz:g} Hz (float32)")
@@ -99,6 +110,7 @@ def cmd_process(args):
     start_utc = None
     if args.start_utc is not None:
         start_utc = _utc_arg(args.start_utc)
+    outputs.check_folder(args.out, args.overwrite, offline.PROCESS_OUTPUTS)
     result = offline.process(None if config is None else load_config(config), inputs[0], args.out,
                              args.allow_mismatch, warn=lambda line: sys.stderr.write(f"beamtap process: warning: "
                                                                                      f"{line}\n"),
@@ -113,6 +125,11 @@ def cmd_pattern(args):
     from beamtap.service import offline  # noqa: PLC0415
 
     config = load_config(args.config)
+    nyquist = config.input.samplerate_hz / 2
+    if not (math.isfinite(args.freq) and 0 < args.freq <= nyquist):
+        raise UsageError(f"--freq {args.freq:g}: expected a frequency above 0 and at most {nyquist:g} Hz "
+                         f"(half the sample rate of {config.where})")
+    outputs.check_file(args.out, args.overwrite)
     look = args.look or ((90.0, 0.0) if config.geometry.kind == "line" else (0.0, 0.0))
     table = offline.pattern(config, args.freq, look, args.out)
     print(f"wrote {args.out}: {len(table)} directions, look {look[0]:g}°/{look[1]:g}° at {args.freq:g} Hz")
@@ -185,6 +202,7 @@ def cmd_picture(args):
 
     if args.live == (args.power_csv is not None):
         raise UsageError("give either POWER.csv or --live (not both, not neither)")
+    outputs.check_file(args.out, args.overwrite)
     if args.live:
         if not args.seconds or args.seconds <= 0:
             raise UsageError("--live needs --seconds S (a positive number)")
@@ -234,6 +252,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("config", nargs="?", default=None, help="config file (default: the built-in demo)")
     p.add_argument("--seconds", type=float, required=True, help="length in seconds")
     p.add_argument("--out", required=True, help="output WAV file")
+    p.add_argument("--overwrite", action="store_true", help="replace outputs that already exist")
 
     p = _add(sub, "process", cmd_process, "beamform a multichannel WAV offline with the config's beams")
     p.add_argument("inputs", nargs="+", metavar="INPUT",
@@ -245,6 +264,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--allow-mismatch", action="store_true",
                    help="beamform a session whose array, channels, medium or sample rate differ from --config")
     p.add_argument("--out", required=True, help="output folder for beams.csv, power.csv, audio.wav, summary.json")
+    p.add_argument("--overwrite", action="store_true", help="replace outputs that already exist")
 
     p = _add(sub, "pattern", cmd_pattern, "theoretical array response against azimuth for one look direction")
     p.add_argument("config", nargs="?", default=None, help="config file (default: the built-in demo)")
@@ -252,6 +272,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--look", type=_look, default=None, help="look direction AZ[,EL] in degrees "
                    "(default: broadside for a line, 0° otherwise)")
     p.add_argument("--out", required=True, help="output .csv (or .png with the plot extra)")
+    p.add_argument("--overwrite", action="store_true", help="replace outputs that already exist")
     p = _add(sub, "serve", cmd_serve, "run the live beamformer service (publishes power and audio over ZeroMQ)")
     p.add_argument("--config", default=None, help="config file (default: the built-in demo scene)")
     p.add_argument("--publish", default=None, metavar="ENDPOINT", help="override [publish] endpoint")
@@ -333,9 +354,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--band", type=int, default=0, help="which band (0-based)")
     p.add_argument("--range-db", type=float, default=30.0, help="colour range below the maximum, dB")
     p.add_argument("--out", required=True, help="output picture: .png, .svg or .pdf")
+    p.add_argument("--overwrite", action="store_true", help="replace outputs that already exist")
 
     p = _add(sub, "record", cmd_record, "record a service's stream (from any machine) into a session folder")
-    p.add_argument("--out", required=True, help="new session folder")
+    p.add_argument("--out", required=True, help="new (or empty) session folder; a recording is never overwritten")
     p.add_argument("--endpoint", default=DEFAULT_PUBLISH, help=f"service stream (default {DEFAULT_PUBLISH})")
     p.add_argument("--what", nargs="+", default=["audio", "power"], choices=["raw", "audio", "power"],
                    help="topics to record (raw needs [publish] raw = true on the service)")

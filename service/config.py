@@ -408,7 +408,25 @@ def _array(t: _Table) -> ArrayGeometry:
                 t.fail(name, v, "trims within ±1 s")
             wiring[name] = v
     t.done()
-    return make(**wiring)
+    geometry = make(**wiring)
+    _check_positions(t, shape, geometry)
+    return geometry
+
+
+#: Sensors closer than this are taken as one place (a typo or a copy-paste in positions_m).
+COINCIDENT_M = 1e-3
+
+
+def _check_positions(t: _Table, shape: str, geometry: ArrayGeometry) -> None:
+    p = geometry.positions_m
+    if len(p) < 2:
+        return
+    d = np.linalg.norm(p[:, None, :] - p[None, :, :], axis=-1) + np.eye(len(p)) * 1e9
+    i, j = np.unravel_index(int(np.argmin(d)), d.shape)
+    if d[i, j] < COINCIDENT_M:
+        t.fail(shape, f"sensors {min(i, j) + 1} and {max(i, j) + 1} at the same place {p[i].tolist()}",
+               f"sensors at least {COINCIDENT_M * 1e3:g} mm apart")
+
 
 
 def _medium(t: _Table) -> MediumConfig:

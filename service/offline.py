@@ -110,6 +110,42 @@ def _effective_bandwidths(bf: Beamformer):
     return [float(bf.samplerate_hz / 2.0 * np.sum(ev.filter.taps**2)) for ev in bf.band_filters]
 
 
+def check_problems(config: Config) -> list:
+    """What would stop this config from running, beyond the config itself: the input (file,
+    session, sound card), the endpoints (can they be bound now), and the array's shape."""
+    problems = []
+    from .sources import make_source  # noqa: PLC0415
+
+    try:
+        make_source(config)  # opens a file or session, looks up a sound card; starts nothing
+    except UsageError as exc:
+        problems.append(f"input: {exc}")
+    import zmq  # noqa: PLC0415
+
+    ctx = zmq.Context.instance()
+    for name, endpoint in (("publish", config.publish.endpoint), ("control", config.control.endpoint)):
+        with ctx.socket(zmq.PUB) as sock:
+            sock.setsockopt(zmq.LINGER, 0)
+            try:
+                sock.bind(endpoint)
+            except zmq.ZMQError as exc:
+                problems.append(f"[{name}] endpoint = {endpoint!r}: cannot bind now ({exc.strerror})")
+    return problems
+
+
+def shape_warnings(config: Config) -> list:
+    """Warnings about the array's shape: sensors in a line that the config did not declare as one
+    (so the display would not say that a line cannot tell a bearing from its mirror image)."""
+    geo = config.geometry
+    p = geo.centred_positions_m
+    if geo.kind != "line" and len(p) >= 2:
+        s = np.linalg.svd(p, compute_uv=False)
+        if s[1] < 1e-6 * max(s[0], 1e-12):
+            return ["the sensors lie on one line: declare [array] line if they are evenly spaced; a line "
+                    "cannot tell a direction from its mirror image about its axis"]
+    return []
+
+
 def check_text(config: Config) -> str:
     engine = make_beamformer(config)
     s = summary(config, engine)
@@ -141,7 +177,7 @@ def check_text(config: Config) -> str:
     ]
     if line:
         lines.append("note          a line array cannot tell a bearing from its mirror image about its axis")
-    lines += [f"warning       {w}" for w in s["warnings"]]
+    lines += [f"warning       {w}" for w in s["warnings"] + shape_warnings(config)]
     return "\n".join(lines)
 
 
@@ -187,6 +223,10 @@ def _progress(done: int, total: int, fs: float):
         if done >= total:
             sys.stderr.write("\n")
         sys.stderr.flush()
+
+
+#: The files ``process`` writes into its output folder.
+PROCESS_OUTPUTS = ("power.csv", "beams.csv", "bands.csv", "audio.wav", "summary.json")
 
 
 def session_config(folder) -> Config:

@@ -64,3 +64,30 @@ def test_picture_names_the_formats_it_writes(tmp_path, suffix):
     r, _ = _run(["picture", "out/power.csv", "--out", f"x{suffix}"], tmp_path)
     assert r.returncode == 2 and ".png, .svg, .pdf" in r.stderr and "Traceback" not in r.stderr
     assert not (tmp_path / f"x{suffix}").exists()
+
+
+def test_check_tries_the_input_the_endpoints_and_the_array_shape(tmp_path):
+    (tmp_path / "co.toml").write_text(_config("positions_m = [[0, 0, 0], [1, 0, 0], [1, 0, 0.0001]]"))
+    r, _ = _run(["check", "co.toml"], tmp_path)
+    assert r.returncode == 2 and "sensors 2 and 3 at the same place" in r.stderr
+    (tmp_path / "ok.toml").write_text(_config())
+    assert _run(["simulate", "ok.toml", "--seconds", "0.1", "--out", "sixteen.wav"], tmp_path)[0].returncode == 0
+    wide = _config("line = { count = 20, spacing_m = 0.5 }")
+    (tmp_path / "in.toml").write_text(wide + '[input]\nsource = "file"\npath = "sixteen.wav"\n'
+                                      '[publish]\nendpoint = "tcp://192.0.2.1:5560"\n')  # TEST-NET-1, not ours
+    r, _ = _run(["check", "in.toml"], tmp_path)
+    assert r.returncode == 2 and "Traceback" not in r.stderr
+    assert "16 channels, the array needs 20" in r.stderr and "cannot bind now" in r.stderr
+    (tmp_path / "col.toml").write_text(_config("positions_m = [[0, 0, 0], [0.5, 0, 0], [1.7, 0, 0]]"))
+    r, _ = _run(["check", "col.toml"], tmp_path)
+    assert r.returncode == 0 and "the sensors lie on one line" in r.stdout
+
+
+@pytest.mark.parametrize("args, words", [(["--freq", "30000"], "--freq 30000"), (["--freq", "-5"], "--freq -5"),
+                                         (["--freq", "1000", "--look", "400"], "--look"),
+                                         (["--freq", "1000", "--look", "90,nan"], "--look")])
+def test_pattern_refuses_what_cannot_be_drawn(tmp_path, args, words):
+    (tmp_path / "ok.toml").write_text(_config())
+    r, _ = _run(["pattern", "ok.toml", *args, "--out", "p.csv"], tmp_path)
+    assert r.returncode == 2 and words in r.stderr and "Traceback" not in r.stderr
+    assert not (tmp_path / "p.csv").exists()

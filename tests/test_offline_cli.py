@@ -195,3 +195,28 @@ def test_unwritable_output_is_a_one_line_error(scene, tmp_path):
     cfg, wav = scene
     r = run("simulate", str(cfg), "--seconds", "1", "--out", str(tmp_path / "missing" / "x.wav"))
     assert r.returncode == 2 and "cannot write" in r.stderr and r.stderr.count("\n") == 1
+
+
+def test_one_overwrite_rule(scene, tmp_path):
+    """Existing outputs are refused in one line unless --overwrite; a session is never written into."""
+    cfg, wav = scene
+    out = tmp_path / "o"
+    assert run("process", str(cfg), str(wav), "--out", str(out)).returncode == 0
+    (out / "notes.txt").write_text("mine")
+    r = run("process", str(cfg), str(wav), "--out", str(out))
+    assert r.returncode == 2 and "exists and is not empty (add --overwrite" in r.stderr
+    r = run("process", str(cfg), str(wav), "--out", str(out), "--overwrite")
+    assert r.returncode == 0, r.stderr
+    assert (out / "notes.txt").read_text() == "mine"  # only process's own files are replaced
+    sim = tmp_path / "s.wav"
+    assert run("simulate", str(cfg), "--seconds", "0.2", "--out", str(sim)).returncode == 0
+    r = run("simulate", str(cfg), "--seconds", "0.2", "--out", str(sim))
+    assert r.returncode == 2 and "exists (add --overwrite" in r.stderr
+    assert run("simulate", str(cfg), "--seconds", "0.2", "--out", str(sim), "--overwrite").returncode == 0
+    r = run("pattern", str(cfg), "--freq", "1000", "--out", str(tmp_path))
+    assert r.returncode == 2 and "is a folder" in r.stderr
+    session = tmp_path / "session"
+    session.mkdir()
+    (session / "manifest.jsonl").write_text("{}\n")
+    r = run("process", str(cfg), str(wav), "--out", str(session), "--overwrite")
+    assert r.returncode == 2 and "recorded session" in r.stderr
