@@ -57,7 +57,7 @@ def _with(old: str, new: str) -> str:
 MISTAKES = [
     # (what is changed, replacement, key the message must name, a word it must contain)
     ("line = { count = 8, spacing_m = 0.5 }", "line = { count = 8, spacing_m = -0.5 }", "array.line.spacing_m", "> 0"),
-    ("line = { count = 8, spacing_m = 0.5 }", "line = { count = 0, spacing_m = 0.5 }", "array.line.count", ">= 1"),
+    ("line = { count = 8, spacing_m = 0.5 }", "line = { count = 0, spacing_m = 0.5 }", "array.line.count", "from 1 to 1024"),
     ("line = { count = 8, spacing_m = 0.5 }", "line = { count = 8.5, spacing_m = 0.5 }", "array.line.count", "whole"),
     ("line = { count = 8, spacing_m = 0.5 }", "line = { count = 8, spacing = 0.5 }", "array.line", "spacing"),
     ("line = { count = 8, spacing_m = 0.5 }", "line = { count = 8, spacing_m = 0.5 }\nring = { count = 4, radius_m = 1.0 }", "array", "exactly one"),
