@@ -330,3 +330,12 @@ def test_watch_to_a_pipe_is_plain_text(svc):
 def test_watch_options_are_checked(svc, args, words):
     r = beamtap("watch", "--endpoint", svc.publish, "--seconds", "3", *args)
     assert r.returncode == 2 and words in r.stderr and "Traceback" not in r.stderr, r.stderr
+
+
+def test_a_beam_change_too_big_to_build_is_refused_at_once(svc):
+    """Band 10-23999 Hz at 48 kHz needs a 125 GiB band evaluator: priced and refused in one line,
+    well inside the client's timeout, and the service runs on."""
+    r = beamtap("ctl", "--control", svc.control, "beams", "--band", "10,23999")
+    assert r.returncode == 2 and "MB of steering data" in r.stderr and r.stderr.count("\n") == 1, r.stderr
+    with Controller(svc.control) as ctl:
+        assert ctl.status()["state"] == "running"
