@@ -232,11 +232,29 @@ def cmd_mark(args):
 COMMANDS = {}
 
 
+#: Client commands: they take --key and --server-key for a secured service.
+CLIENTS = ("tail", "watch", "ctl", "listen", "picture", "record", "mark")
+
+
 def _add(sub, name, func, help_text):
     p = sub.add_parser(name, help=help_text, description=help_text)
     p.set_defaults(func=func)
+    if name in CLIENTS:
+        p.add_argument("--key", default=None, metavar="FILE",
+                       help="your secret key file (NAME.key_secret) for a secured service (or $BEAMTAP_KEY)")
+        p.add_argument("--server-key", default=None, metavar="FILE",
+                       help="the service's public key file (.key) for a secured service (or $BEAMTAP_SERVER_KEY)")
     COMMANDS[name] = p
     return p
+
+
+def cmd_keys(args):
+    from beamtap.service.security import make_keys  # noqa: PLC0415
+
+    public, secret, z85 = make_keys(args.name, args.out)
+    print(f"public key {z85}\nwrote {public} (public: hand it out) and {secret} (secret, mode 0600: keep it here)\n"
+          "a service's .key goes to its clients as --server-key; a client's .key goes into the service's "
+          "clients (operators) or readers folder")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -314,6 +332,8 @@ def build_parser() -> argparse.ArgumentParser:
     after.add_argument("--control", default=argparse.SUPPRESS, help=argparse.SUPPRESS)
     after.add_argument("--timeout", type=float, default=argparse.SUPPRESS, help=argparse.SUPPRESS)
     after.add_argument("--json", action="store_true", default=argparse.SUPPRESS, help=argparse.SUPPRESS)
+    after.add_argument("--key", default=argparse.SUPPRESS, help=argparse.SUPPRESS)
+    after.add_argument("--server-key", default=argparse.SUPPRESS, help=argparse.SUPPRESS)
     csub = p.add_subparsers(dest="what", metavar="WHAT", required=True, parser_class=_Parser)
     csub.add_parser("status", help="counters: overflows, gaps, frames lost, block time, CPU, drops", parents=[after])
     csub.add_parser("config", help="the running config as TOML", parents=[after])
@@ -375,6 +395,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--control", default=DEFAULT_CONTROL, help=f"service control socket (default {DEFAULT_CONTROL})")
     p.add_argument("--timeout", type=float, default=5.0)
 
+    p = _add(sub, "keys", cmd_keys, "make a CURVE key pair for a secured service or one of its clients")
+    p.add_argument("name", help="a plain name for the key, e.g. 'pier-service' or 'lab-logger'")
+    p.add_argument("--out", required=True, help="folder for NAME.key (public) and NAME.key_secret (secret)")
+
     p = _add(sub, "demo", cmd_demo, "the built-in demo: start the service and the live view together")
     p.add_argument("--rate", type=float, default=8.0, help="redraws per second (default 8)")
     p.add_argument("--ascii", action="store_true", help="plain characters, no colour")
@@ -390,6 +414,11 @@ def main(argv=None) -> int:
         return 2
     from beamtap.client.subscriber import EndpointError, ServiceError  # noqa: PLC0415 - light, numpy/zmq only
 
+    # Keys given on the command line reach every client socket through the environment the client
+    # library reads (client/subscriber.py, secure_client).
+    for option, var in (("key", "BEAMTAP_KEY"), ("server_key", "BEAMTAP_SERVER_KEY")):
+        if getattr(args, option, None):
+            os.environ[var] = getattr(args, option)
     try:
         return args.func(args) or 0
     except (UsageError, EndpointError, ServiceError, TimeoutError) as exc:

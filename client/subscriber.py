@@ -33,6 +33,40 @@ def control_for(endpoint: str) -> str:
     return DEFAULT_CONTROL
 
 
+def secure_client(sock, key=None, server_key=None) -> bool:
+    """Make ``sock`` a CURVE client (before it connects) when keys are given, as arguments or in the
+    environment (``BEAMTAP_KEY``: this client's secret certificate file; ``BEAMTAP_SERVER_KEY``: the
+    service's public certificate file). Returns True when CURVE is on."""
+    import os  # noqa: PLC0415
+
+    key = key or os.environ.get("BEAMTAP_KEY") or None
+    server_key = server_key or os.environ.get("BEAMTAP_SERVER_KEY") or None
+    if key is None and server_key is None:
+        return False
+    if key is None or server_key is None:
+        sock.close(linger=0)
+        raise EndpointError("a secured service needs both --key (your NAME.key_secret) and --server-key (the "
+                            "service's public .key)")
+    import zmq.auth  # noqa: PLC0415
+
+    try:
+        public, secret = zmq.auth.load_certificate(key)
+        server_public, _ = zmq.auth.load_certificate(server_key)
+    except (OSError, ValueError) as exc:
+        sock.close(linger=0)
+        raise EndpointError(f"key file: {exc}") from None
+    if not secret:
+        sock.close(linger=0)
+        raise EndpointError(f"--key {key}: holds no secret key (use your NAME.key_secret file)")
+    sock.curve_secretkey, sock.curve_publickey, sock.curve_serverkey = secret, public, server_public
+    return True
+
+
+#: What a client says when a secured service stays silent.
+KEY_HINT = ("the service did not answer: check --server-key and that your public key is in its clients (or "
+            "readers) folder")
+
+
 class EndpointError(ValueError):
     """An endpoint ZeroMQ cannot use (malformed address, unknown transport)."""
 
@@ -124,7 +158,7 @@ class Subscriber:
     """
 
     def __init__(self, endpoint: str = DEFAULT_PUBLISH, topics=("power", "audio", "status", "beams"),
-                 timeout_s: float | None = 5.0, queue: int = 1000, context=None):
+                 timeout_s: float | None = 5.0, queue: int = 1000, context=None, key=None, server_key=None):
         for t in topics:
             if t not in protocol.TOPICS:
                 raise ValueError(f"topics: {t!r} is not one of {', '.join(protocol.TOPICS)}")
@@ -135,6 +169,7 @@ class Subscriber:
         self._sock.setsockopt(zmq.RCVHWM, int(queue))
         self._sock.setsockopt(zmq.LINGER, 0)
         self._sock.setsockopt(zmq.MAXMSGSIZE, protocol.MAX_MESSAGE_BYTES)
+        self.secured = secure_client(self._sock, key, server_key)
         _connect(self._sock, endpoint)
         for t in topics:
             self._sock.setsockopt(zmq.SUBSCRIBE, t.encode())
@@ -153,8 +188,8 @@ class Subscriber:
         """The next frame; raises ``TimeoutError`` after ``timeout_s`` without one."""
         while True:
             if self.timeout_s is not None and not self._sock.poll(int(self.timeout_s * 1000)):
-                raise TimeoutError(f"no message from {self.endpoint} within {self.timeout_s:g} s "
-                                   f"(is a beamtap service publishing there?)")
+                raise TimeoutError(f"no message from {self.endpoint} within {self.timeout_s:g} s: "
+                                   + (KEY_HINT if self.secured else "is a beamtap service publishing there?"))
             try:
                 topic, header, data = protocol.decode(self._sock.recv_multipart(copy=False))
             except protocol.ProtocolError:
@@ -220,17 +255,21 @@ class Controller:
     ...     ctl.beams(set={"audio_deg": [[75.0, 0.0]]})
     """
 
-    def __init__(self, endpoint: str = DEFAULT_CONTROL, timeout_s: float = 5.0, context=None):
+    def __init__(self, endpoint: str = DEFAULT_CONTROL, timeout_s: float = 5.0, context=None, key=None,
+                 server_key=None):
         self.endpoint = endpoint
         self.timeout_s = timeout_s
         self._ctx = context or zmq.Context.instance()
         self._sock = None
+        self._keys = (key, server_key)
+        self.secured = False
 
     def _socket(self):
         if self._sock is None:
             self._sock = self._ctx.socket(zmq.REQ)
             self._sock.setsockopt(zmq.LINGER, 0)
             self._sock.setsockopt(zmq.MAXMSGSIZE, protocol.MAX_MESSAGE_BYTES)
+            self.secured = secure_client(self._sock, *self._keys)
             _connect(self._sock, self.endpoint)
         return self._sock
 
@@ -248,9 +287,10 @@ class Controller:
             # A REQ socket that lost its reply cannot be reused: start afresh next time.
             sock.close(linger=0)
             self._sock = None
-            raise ServiceError(f"no reply from {self.endpoint} within {self.timeout_s:g} s: the service may "
-                               "still be busy (a large beam change takes a few seconds; try a longer --timeout), "
-                               "or nothing is listening there")
+            raise ServiceError(f"no reply from {self.endpoint} within {self.timeout_s:g} s: " + (
+                KEY_HINT + ", or it is still busy" if self.secured else
+                "the service may still be busy (a large beam change takes a few seconds; try a longer "
+                "--timeout), or nothing is listening there"))
         reply = protocol.unpack(sock.recv())
         if not isinstance(reply, dict) or not reply.get("ok"):
             raise ServiceError(reply.get("error", "malformed reply") if isinstance(reply, dict) else

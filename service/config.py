@@ -231,6 +231,15 @@ class RecordConfig:
 
 
 @dataclass(frozen=True)
+class SecurityConfig:
+    """``[security]``: CURVE keys for the stream and control socket (see :mod:`.security`)."""
+    server_key: str | None = None  # the service's secret certificate file
+    clients: str | None = None  # folder of operators' public certificates
+    readers: str | None = None  # folder of readers' public certificates
+    allow_insecure: bool = False
+
+
+@dataclass(frozen=True)
 class Config:
     """A validated beamtap config."""
 
@@ -244,6 +253,7 @@ class Config:
     publish: PublishConfig = field(default_factory=PublishConfig)
     control: ControlConfig = field(default_factory=ControlConfig)
     record: RecordConfig = field(default_factory=RecordConfig)
+    security: SecurityConfig = field(default_factory=SecurityConfig)
 
     @property
     def sound_speed_mps(self) -> float:
@@ -350,8 +360,9 @@ def loads(text: str, where: str = "<config>") -> Config:
     publish = _publish(top.table("publish", {}))
     control = _control(top.table("control", {}))
     record = _record(top.table("record", {}))
+    security = _security(top.table("security", {}))
     top.done()
-    return Config(where, text, geometry, medium, inp, beams, batch, publish, control, record)
+    return Config(where, text, geometry, medium, inp, beams, batch, publish, control, record, security)
 
 
 def _array(t: _Table) -> ArrayGeometry:
@@ -578,6 +589,38 @@ def _directions(t: _Table, name: str, allow_empty: bool, default=_REQUIRED):
     return v
 
 
+def _path(t: _Table, name: str, folder: bool):
+    """A path key: relative to the config file; must exist (a folder or a file)."""
+    v = t.string(name, None)
+    if v is None:
+        return None
+    p = _resolve(t, v)
+    if not (os.path.isdir(p) if folder else os.path.isfile(p)):
+        t.fail(name, v, f"an existing {'folder' if folder else 'file'} ({p} is not one)")
+    return p
+
+
+def _resolve(t: _Table, path: str) -> str:
+    """An absolute path: a relative one is relative to the config file, like any path a file names."""
+    p = os.path.expanduser(path)
+    if not os.path.isabs(p):
+        p = os.path.join(os.path.dirname(os.path.abspath(t.where)) if os.path.isfile(t.where) else os.getcwd(), p)
+    return os.path.abspath(p)
+
+
+def _security(t: _Table) -> SecurityConfig:
+    server_key = _path(t, "server_key", folder=False)
+    clients = _path(t, "clients", folder=True)
+    readers = _path(t, "readers", folder=True)
+    insecure = t.boolean("allow_insecure", False)
+    if server_key is None and (clients or readers):
+        t.fail("server_key", _REQUIRED, "the service's secret key file when clients or readers are given")
+    if server_key is not None and clients is None:
+        t.fail("clients", _REQUIRED, "a folder of operators' public keys when server_key is set")
+    t.done()
+    return SecurityConfig(server_key, clients, readers, insecure)
+
+
 def _publish(t: _Table) -> PublishConfig:
     ep = t.string("endpoint", DEFAULT_PUBLISH)
     raw = t.boolean("raw", False)
@@ -602,13 +645,7 @@ def default_record_folder() -> str:
 
 def _record(t: _Table) -> RecordConfig:
     folder = t.string("folder", None)
-    if folder is None:
-        folder = default_record_folder()
-    elif not os.path.isabs(os.path.expanduser(folder)):
-        # relative to the config file, like any path a file names
-        folder = os.path.join(os.path.dirname(os.path.abspath(t.where)) if os.path.isfile(t.where) else os.getcwd(),
-                              folder)
-    folder = os.path.abspath(os.path.expanduser(folder))
+    folder = default_record_folder() if folder is None else _resolve(t, folder)
     kinds = t.raw("what", ["raw"], f"a list drawn from {', '.join(RECORD_KINDS)}")
     if not isinstance(kinds, list) or not kinds or any(k not in RECORD_KINDS for k in kinds):
         t.fail("what", kinds, f"a non-empty list drawn from {', '.join(RECORD_KINDS)}")

@@ -23,15 +23,16 @@ from beamtap.client.protocol import MAX_REQUEST_BYTES, ProtocolError, pack, unpa
 from beamtap.errors import ConfigError, UsageError
 
 from . import config as cfg
+from . import security
 from .engine.cost import AdmissionError
 from .publisher import bind
 
 log = logging.getLogger("beamtap.control")
 
-COMMANDS = ("ping", "status", "config", "beams", "record", "mark")
+COMMANDS = ("ping", "status", "config", "beams", "record", "mark", "reload_keys")
 #: The keys each command takes.
 _KEYS = {"ping": {"cmd"}, "status": {"cmd"}, "config": {"cmd"}, "beams": {"cmd", "set"},
-         "record": {"cmd", "action", "what", "label"}, "mark": {"cmd", "text"}}
+         "record": {"cmd", "action", "what", "label"}, "mark": {"cmd", "text"}, "reload_keys": {"cmd"}}
 #: Deepest nesting a request may have (the deepest real one, a grid in ``set``, has 3 levels).
 _MAX_DEPTH = 8
 
@@ -95,6 +96,9 @@ class ControlServer:
         self._sock = self._ctx.socket(zmq.REP)
         # A larger message is never read: ZeroMQ drops the connection that sends it.
         self._sock.setsockopt(zmq.MAXMSGSIZE, MAX_REQUEST_BYTES)
+        self.guard = getattr(service, "guard", None)
+        if self.guard is not None:
+            self.guard.apply(self._sock)  # CURVE server, before the bind
         self.endpoint = bind(self._sock, endpoint, "control")
         self._stop = threading.Event()
         self._thread = None
@@ -116,17 +120,23 @@ class ControlServer:
             if not self._sock.poll(100):
                 continue
             try:
-                frames = self._sock.recv_multipart()
+                frames = self._sock.recv_multipart(copy=False)
             except zmq.ZMQError:
                 continue
-            reply = self.handle(frames)
+            user = None
+            if self.guard is not None and self.guard.enabled:
+                try:
+                    user = frames[0].get("User-Id")  # the sender's public key, as ZAP accepted it
+                except zmq.ZMQError:
+                    user = None
+            reply = self.handle([f.bytes for f in frames], user)
             try:
                 self._sock.send(pack(reply))
             except zmq.ZMQError as exc:
                 log.warning("control: reply not sent: %s", exc)
 
-    def handle(self, frames) -> dict:
-        """Answer one request (list of frames); never raises."""
+    def handle(self, frames, user: str | None = None) -> dict:
+        """Answer one request (list of frames) from ``user`` (a ZAP User-Id, or None); never raises."""
         self.requests += 1
         try:
             if len(frames) != 1:
@@ -147,7 +157,14 @@ class ControlServer:
                 raise RequestError(f"unknown key {unknown[0]!r} in {cmd} request; expected "
                                    f"{', '.join(repr(k) for k in sorted(_KEYS[cmd] - {'cmd'})) or 'no other keys'}")
             _refuse_missing_values(req)
+            name, role = self.guard.who(user) if self.guard is not None else ("local", security.OPERATOR)
+            change = security.is_change(req)
+            if change and role != security.OPERATOR:
+                raise RequestError(f"refused: key {name!r} is a reader; readers may watch (ping, status, config, "
+                                   "beams) but change nothing; ask for an operator key (the clients folder)")
             result = getattr(self, f"_cmd_{cmd}")(req)
+            if change:
+                self._note_change(name, req)
             return {"ok": True, "cmd": cmd, **result}
         except RequestError as exc:
             self.errors += 1
@@ -160,7 +177,21 @@ class ControlServer:
             log.exception("control request failed")
             return {"ok": False, "error": f"internal error: {type(exc).__name__}: {exc}"}
 
+    def _note_change(self, who: str, req: dict) -> None:
+        """Every change is logged with who asked, and noted in the session when recording."""
+        what = {k: v for k, v in req.items() if k != "cmd"}
+        text = str(what)
+        log.info("control: %s %s by %s", req["cmd"], text if len(text) < 300 else text[:300] + "…", who)
+        rec = getattr(self.service, "recorder", None)
+        if rec is not None:
+            rec.note("control", cmd=req["cmd"], by=who, request=what)
+
     # ---- commands ----------------------------------------------------------
+    def _cmd_reload_keys(self, req):
+        if self.guard is None or not self.guard.enabled:
+            raise RequestError("reload_keys: this service has no [security] server_key (no keys to read)")
+        return {"keys": self.guard.reload()}
+
     def _cmd_ping(self, req):
         import beamtap  # noqa: PLC0415
 

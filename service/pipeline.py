@@ -40,6 +40,7 @@ class Pipeline:
         self.source = source
         self.publisher = publisher
         self.recorder = recorder
+        self.guard = None  # set by the service: its security status goes into every status
         inp = config.input
         self.block_frames = inp.block_frames
         self.samplerate_hz = inp.samplerate_hz
@@ -273,6 +274,8 @@ class Pipeline:
         }
         if self.recorder is not None:
             out["record"] = self.recorder.status()
+        if self.guard is not None:
+            out["security"] = self.guard.status()
         return out
 
     def publish_status(self):

@@ -50,16 +50,20 @@ class Publisher:
     send_queue : int
         Messages queued per subscriber before it loses messages.
     context : zmq.Context, optional
+    secure : callable, optional
+        Applied to the socket before it binds (``Guard.apply``: CURVE).
     """
 
     #: Messages waiting for the sender thread before new ones are dropped (a few seconds of blocks).
     HANDOVER_MESSAGES = 1000
 
-    def __init__(self, endpoint: str, stream_id: str, send_queue: int = 200, context=None):
+    def __init__(self, endpoint: str, stream_id: str, send_queue: int = 200, context=None, secure=None):
         self.stream_id = stream_id
         self._ctx = context or zmq.Context.instance()
         self._sock = self._ctx.socket(zmq.PUB)
         self._sock.setsockopt(zmq.SNDHWM, int(send_queue))
+        if secure is not None:
+            secure(self._sock)  # CURVE server options, before the bind
         self.endpoint = bind(self._sock, endpoint, "publish")
         self.seq = {}
         self.sent = 0

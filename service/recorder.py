@@ -132,6 +132,15 @@ class Recorder:
             self._queue.put(("mark", text, sample, utc))
             return {"sample": int(sample), "utc": utc, "utc_iso": iso(utc), "text": text}
 
+    def note(self, type_: str, **fields) -> None:
+        """A manifest record in the open session (e.g. who changed the beams); nothing when not recording."""
+        if self._writer is None:
+            return
+        try:
+            self._queue.put_nowait(("note", type_, dict(fields, utc=time.time())))
+        except queue.Full:
+            self.queue_dropped += 1
+
     def status(self) -> dict:
         w = self._writer
         return {
@@ -184,6 +193,9 @@ class Recorder:
                         continue
                     if item[0] == "mark":
                         w.mark(item[1], item[2], item[3])
+                        continue
+                    if item[0] == "note":
+                        w.record(item[1], **item[2])
                         continue
                     kind, first, data, utc, table = item
                     if table != w.beam_table_id:

@@ -27,6 +27,7 @@ from .offline import cost_model
 from .control import ControlServer
 from .pipeline import Pipeline
 from .publisher import Publisher
+from .security import Guard
 from .recorder import Recorder
 from .sources import make_source
 
@@ -54,6 +55,7 @@ class Service:
         self.pipeline = None
         self.recorder = None
         self.cost = None
+        self.guard = None
 
     def start(self) -> None:
         cfg = self.config
@@ -62,10 +64,14 @@ class Service:
                      "a passing boat, a 1.5 kHz pinger, sea noise)")
         for warning in cfg.medium.warnings:
             log.warning(warning)
+        self.guard = Guard(cfg.security, self.context, {"publish": cfg.publish.endpoint,
+                                                          "control": cfg.control.endpoint})
         self.source = make_source(cfg)
-        self.publisher = Publisher(cfg.publish.endpoint, self.stream_id, cfg.publish.send_queue, self.context)
+        self.publisher = Publisher(cfg.publish.endpoint, self.stream_id, cfg.publish.send_queue, self.context,
+                                   secure=self.guard.apply)
         self.recorder = Recorder(cfg, self)
         self.pipeline = Pipeline(cfg, self.source, self.publisher, self.recorder)
+        self.pipeline.guard = self.guard
         # The one admission check: calibrated once here, then the same answer for the same request.
         self.cost = cost_model(cfg, self.pipeline.engine)
         try:
@@ -74,8 +80,10 @@ class Service:
             raise UsageError(f"{cfg.where}: [beams] refused for live use: {exc}") from None
         self.control = ControlServer(cfg.control.endpoint, self, self.context)
         s = self.pipeline.array_summary()
-        log.info("publishing on %s (topics power, audio%s, status, beams); control on %s",
-                 self.publisher.endpoint, ", raw" if cfg.publish.raw else "", self.control.endpoint)
+        log.info("publishing on %s (topics power, audio%s, status, beams); control on %s; %s",
+                 self.publisher.endpoint, ", raw" if cfg.publish.raw else "", self.control.endpoint,
+                 "CURVE keys required" if self.guard.enabled else "no keys (loopback)" if not self.guard.insecure
+                 else "NO KEYS, reachable from other machines (allow_insecure)")
         log.info("source: %s; %g Hz, blocks of %d frames", self.source.describe(), cfg.input.samplerate_hz,
                  cfg.input.block_frames)
         log.info("array: %s, %d of %d sensors active, aperture %.3f m, sound speed %.2f m/s (%s)",
@@ -112,6 +120,8 @@ class Service:
                     log.exception("while stopping %s", type(part).__name__)
         if self.publisher is not None:
             self.publisher.close()
+        if self.guard is not None:
+            self.guard.stop()
         self.context.term()
 
     def endpoints(self) -> dict:
@@ -135,6 +145,8 @@ def run(config: Config, builtin: bool, publish: str | None = None, control: str 
     signal.signal(signal.SIGINT, on_signal)
     signal.signal(signal.SIGTERM, on_signal)
     service = Service(config, builtin)
+    reload = threading.Event()
+    signal.signal(signal.SIGHUP, lambda signum, frame: reload.set())  # read the key folders again
     try:
         service.start()
         if ready_file:
@@ -146,6 +158,10 @@ def run(config: Config, builtin: bool, publish: str | None = None, control: str 
         while not stop.wait(0.2):
             if deadline is not None and time.monotonic() >= deadline:
                 break
+            if reload.is_set():
+                reload.clear()
+                log.info("SIGHUP: reading the key folders again")
+                service.guard.reload()
             # A part that cannot go on ends the service, so a supervisor restarts it.
             if service.pipeline.stopped.is_set():
                 log.error("processing thread stopped unexpectedly; exiting so a supervisor can restart the service")

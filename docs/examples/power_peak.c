@@ -8,6 +8,9 @@
  *   gcc -O2 -Wall -o power_peak power_peak.c $(pkg-config --cflags --libs libzmq msgpack)
  * Run:
  *   ./power_peak tcp://127.0.0.1:5560 [count]
+ *   ./power_peak tcp://boat.local:5560 [count] --server-key service.key --key me.key_secret
+ * With the two key files (ZeroMQ certificate files, as `beamtap keys` writes
+ * them) the socket is a CURVE client of a secured service.
  */
 #include <msgpack.h>
 #include <stdint.h>
@@ -104,11 +107,52 @@ static int on_power(const msgpack_object *h, const unsigned char *payload, size_
     return 1;
 }
 
+/* The 40-character Z85 key after `name = "` in a ZeroMQ certificate file; 0 when found. */
+static int read_key(const char *path, const char *name, char out[41]) {
+    FILE *f = fopen(path, "r");
+    if (!f) return -1;
+    char line[512];
+    int found = -1;
+    size_t len = strlen(name);
+    while (found && fgets(line, sizeof line, f)) {
+        const char *p = line;
+        while (*p == ' ' || *p == '\t') p++;
+        if (strncmp(p, name, len) != 0) continue;
+        const char *q = strchr(p + len, '"');
+        if (q && strlen(q + 1) >= 41 && q[41] == '"') {
+            memcpy(out, q + 1, 40);
+            out[40] = 0;
+            found = 0;
+        }
+    }
+    fclose(f);
+    return found;
+}
+
 int main(int argc, char **argv) {
-    const char *endpoint = argc > 1 ? argv[1] : "tcp://127.0.0.1:5560";
-    long count = argc > 2 ? atol(argv[2]) : 0;
+    const char *endpoint = "tcp://127.0.0.1:5560", *server_key = NULL, *key = NULL;
+    long count = 0;
+    int positional = 0;
+    for (int i = 1; i < argc; i++) {
+        if (strcmp(argv[i], "--server-key") == 0 && i + 1 < argc) server_key = argv[++i];
+        else if (strcmp(argv[i], "--key") == 0 && i + 1 < argc) key = argv[++i];
+        else if (positional++ == 0) endpoint = argv[i];
+        else count = atol(argv[i]);
+    }
     void *ctx = zmq_ctx_new();
     void *sub = zmq_socket(ctx, ZMQ_SUB);
+    if (server_key || key) { /* CURVE client: the service's public key, our own key pair */
+        char server_public[41], public[41], secret[41];
+        if (!server_key || !key || read_key(server_key, "public-key", server_public) ||
+            read_key(key, "public-key", public) || read_key(key, "secret-key", secret)) {
+            fprintf(stderr, "power_peak: need --server-key SERVICE.key and --key YOUR.key_secret (readable "
+                            "ZeroMQ certificate files)\n");
+            return 2;
+        }
+        zmq_setsockopt(sub, ZMQ_CURVE_SERVERKEY, server_public, 40);
+        zmq_setsockopt(sub, ZMQ_CURVE_PUBLICKEY, public, 40);
+        zmq_setsockopt(sub, ZMQ_CURVE_SECRETKEY, secret, 40);
+    }
     if (zmq_connect(sub, endpoint) != 0) {
         fprintf(stderr, "power_peak: cannot connect to %s: %s\n", endpoint, zmq_strerror(zmq_errno()));
         return 2;
