@@ -348,6 +348,8 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("action", choices=["start", "stop", "status"])
     r.add_argument("--what", dest="kinds", nargs="+", choices=["raw", "audio", "power"], help="what to record")
     r.add_argument("--label", default=None, help="a label for the session")
+    csub.add_parser("reload_keys", help="a secured service reads its clients and readers folders again",
+                    parents=[after])
     m = csub.add_parser("mark", help="add an event mark to the recording", parents=[after])
     m.add_argument("text", nargs="+", help="the mark's text")
 

@@ -68,6 +68,10 @@ def run(args) -> int:
                     f"{len(b['directions_deg'])} power beams "
                     f"({b['directions_deg'][0][0]:g}° … {b['directions_deg'][-1][0]:g}°), "
                     f"audio {b['audio_deg']}, shading {b['shading']}, bands {b['band_hz']}")
+        elif args.what == "reload_keys":
+            reply = ctl.request("reload_keys")
+            k = reply["keys"]
+            text = f"key folders read again: {k['operators']} operator and {k['readers']} reader keys"
         elif args.what == "record":
             reply = ctl.request("record", action=args.action, **({"what": args.kinds} if args.kinds else {}),
                                 **({"label": args.label} if args.label else {}))

@@ -189,7 +189,8 @@ class Subscriber:
         while True:
             if self.timeout_s is not None and not self._sock.poll(int(self.timeout_s * 1000)):
                 raise TimeoutError(f"no message from {self.endpoint} within {self.timeout_s:g} s: "
-                                   + (KEY_HINT if self.secured else "is a beamtap service publishing there?"))
+                                   + (KEY_HINT if self.secured else "is a beamtap service publishing there "
+                                      "(one that needs keys sends nothing without --key and --server-key)?"))
             try:
                 topic, header, data = protocol.decode(self._sock.recv_multipart(copy=False))
             except protocol.ProtocolError:
@@ -290,7 +291,7 @@ class Controller:
             raise ServiceError(f"no reply from {self.endpoint} within {self.timeout_s:g} s: " + (
                 KEY_HINT + ", or it is still busy" if self.secured else
                 "the service may still be busy (a large beam change takes a few seconds; try a longer "
-                "--timeout), or nothing is listening there"))
+                "--timeout), nothing is listening there, or it needs keys (--key, --server-key)"))
         reply = protocol.unpack(sock.recv())
         if not isinstance(reply, dict) or not reply.get("ok"):
             raise ServiceError(reply.get("error", "malformed reply") if isinstance(reply, dict) else
