@@ -243,3 +243,18 @@ def test_the_wire_shows_no_plaintext_when_secured(secured, tmp_path, secure):
         if ctx is not None:
             ctx.__exit__(None, None, None)
     assert np.isfinite(frames[-1].first_sample)
+
+
+def test_changes_are_noted_in_the_recording_with_the_key_name(secured):
+    from beamtap.session import read_manifest
+
+    svc = secured["svc"]
+    with Controller(svc.control, key=secured["op"], server_key=secured["server"]) as ctl:
+        session = ctl.record("start", what=["power"])["session"]
+        ctl.beams(set={"audio_deg": [[80.0, 0.0]]})
+        ctl.mark("buoy in")
+        ctl.record("stop")
+    notes = [r for r in read_manifest(session) if r["type"] == "control"]
+    assert [(n["cmd"], n["by"]) for n in notes] == [("record", "operator"), ("beams", "operator"),
+                                                     ("mark", "operator")]
+    assert notes[1]["request"] == {"set": {"audio_deg": [[80.0, 0.0]]}}
