@@ -220,3 +220,17 @@ def test_one_overwrite_rule(scene, tmp_path):
     (session / "manifest.jsonl").write_text("{}\n")
     r = run("process", str(cfg), str(wav), "--out", str(session), "--overwrite")
     assert r.returncode == 2 and "recorded session" in r.stderr
+
+
+def test_process_start_utc_dates_the_power_rows(scene, tmp_path):
+    cfg, wav = scene
+    out = tmp_path / "dated"
+    r = run("process", str(cfg), str(wav), "--out", str(out), "--start-utc", "2026-12-05T10:15:00Z")
+    assert r.returncode == 0, r.stderr
+    from beamtap import powertable
+
+    table = powertable.read(out)
+    start = 1796465700.0  # 2026-12-05T10:15:00Z as POSIX seconds
+    assert np.allclose(table.time_utc, start + table.first_sample / 16000, atol=1e-6)
+    r = run("process", str(cfg), str(wav), "--out", str(tmp_path / "x"), "--start-utc", "yesterday")
+    assert r.returncode == 2 and "--start-utc 'yesterday'" in r.stderr
