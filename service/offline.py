@@ -20,7 +20,7 @@ from beamtap.errors import UsageError
 
 from .config import Config, loads
 from .engine import cost, diagnostics
-from .engine.beamformer import Beamformer
+from .engine.beamformer import KERNELS_MISSING, Beamformer
 from .engine.directions import fan, unit_vectors
 from .engine.scene import Scene
 from .engine.shading import shading_weights
@@ -177,6 +177,8 @@ def check_text(config: Config) -> str:
     ]
     if line:
         lines.append("note          a line array cannot tell a bearing from its mirror image about its axis")
+    if KERNELS_MISSING:
+        lines.append(f"warning       {KERNELS_MISSING}")
     lines += [f"warning       {w}" for w in s["warnings"] + shape_warnings(config)]
     return "\n".join(lines)
 
@@ -278,6 +280,8 @@ def process(config: Config | None, input_path, out_dir, allow_mismatch: bool = F
     """
     out = Path(out_dir)
     warn = warn or (lambda line: None)
+    if KERNELS_MISSING:
+        warn(KERNELS_MISSING)
     if Path(input_path).is_dir():
         stored = session_config(input_path)
         if config is None:

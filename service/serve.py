@@ -22,6 +22,7 @@ import zmq
 from beamtap.errors import UsageError
 
 from .config import Config
+from .engine.beamformer import KERNELS_MISSING
 from .engine.cost import AdmissionError
 from .offline import cost_model
 from .control import ControlServer
@@ -95,8 +96,7 @@ class Service:
                  "%.2f ms", s["power_beams"], s["audio_beams"], s["bulk_delay_samples"], s["bulk_delay_ms"],
                  s["latency_budget_ms"])
         if not self.pipeline.engine.compiled:
-            log.warning("engine: the compiled kernels are not installed, numpy forms the sums (slower; "
-                        "reinstall beamtap with a C compiler, see DEVELOPERS.md)")
+            log.warning("engine: %s", KERNELS_MISSING or "the numpy path was chosen")
         for w in s["warnings"]:
             log.warning(w)
         # Everything built so far lives for the whole run: keep it out of the cyclic garbage

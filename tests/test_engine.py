@@ -481,3 +481,26 @@ def test_beamwidth_of_a_uniform_line():
     geo = ArrayGeometry.line(16, 0.5)
     bw = beamwidth_deg(geo.centred_positions_m, np.full(16, 1 / 16), (90.0, 0.0), 1500.0, C)
     assert bw == pytest.approx(2 * np.degrees(np.arcsin(0.886 / 16)), abs=0.06)
+
+
+def test_without_the_compiled_kernels_every_command_says_so(tmp_path):
+    """An install without a C compiler: the engine runs on numpy, and check says why and what it costs.
+    (The kernels are hidden from a child process by a meta-path hook that refuses their import.)"""
+    import subprocess
+    import sys
+
+    cfg = tmp_path / "c.toml"
+    cfg.write_text("[array]\nline = { count = 8, spacing_m = 0.5 }\n[medium]\nsound_speed_mps = 1500.0\n"
+                   "[beams]\nfan = { from_deg = 0, to_deg = 180, step_deg = 2 }\nband_hz = [300.0, 1400.0]\n")
+    hide = ("import sys, importlib.abc\n"
+            "class Hide(importlib.abc.MetaPathFinder):\n"
+            "    def find_spec(self, name, path, target=None):\n"
+            "        if name.endswith('engine._kernels'):\n"
+            "            raise ImportError('no compiler at install time')\n"
+            "sys.meta_path.insert(0, Hide())\n"
+            "from beamtap.cli import main\n"
+            f"sys.exit(main(['check', {str(cfg)!r}]))\n")
+    r = subprocess.run([sys.executable, "-c", hide], capture_output=True, text=True, timeout=60)
+    assert r.returncode == 0, r.stderr
+    assert "the compiled kernels are not installed (no compiler at install time)" in r.stdout
+    assert "more slowly" in r.stdout and "RTF" in r.stdout

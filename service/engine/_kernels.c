@@ -58,6 +58,38 @@ typedef int vi __attribute__((vector_size(4 * FL)));
 static inline __attribute__((always_inline)) vf ld(const float *p) { return *(const vfu *)p; }
 static inline __attribute__((always_inline)) void st(float *p, vf v) { *(vfu *)p = v; }
 
+/* Lane shuffles: the compiler's own primitive where it has one (clang and GCC >= 12:
+ * __builtin_shufflevector; older GCC: __builtin_shuffle), else plain C over the lanes, which
+ * any compiler with vector extensions takes (and usually turns into the same instructions). */
+#if defined(__has_builtin)
+#if __has_builtin(__builtin_shufflevector)
+#define HAVE_SHUFFLEVECTOR 1
+#endif
+#endif
+#if defined(HAVE_SHUFFLEVECTOR)
+#define REVERSE(v) __builtin_shufflevector((v), (v), 7, 6, 5, 4, 3, 2, 1, 0)
+#define INTERLEAVE_LO(a, b) __builtin_shufflevector((a), (b), 0, 8, 1, 9, 2, 10, 3, 11)
+#define INTERLEAVE_HI(a, b) __builtin_shufflevector((a), (b), 4, 12, 5, 13, 6, 14, 7, 15)
+#elif defined(__GNUC__) && !defined(__clang__)
+#define REVERSE(v) __builtin_shuffle((v), (vi){7, 6, 5, 4, 3, 2, 1, 0})
+#define INTERLEAVE_LO(a, b) __builtin_shuffle((a), (b), (vi){0, 8, 1, 9, 2, 10, 3, 11})
+#define INTERLEAVE_HI(a, b) __builtin_shuffle((a), (b), (vi){4, 12, 5, 13, 6, 14, 7, 15})
+#else
+static inline vf reverse_lanes(vf v) { vf r; for (int i = 0; i < FL; i++) r[i] = v[FL - 1 - i]; return r; }
+static inline vf interleave(vf a, vf b, int half)
+{
+    vf r;
+    for (int i = 0; i < FL / 2; i++) {
+        r[2 * i] = a[half * FL / 2 + i];
+        r[2 * i + 1] = b[half * FL / 2 + i];
+    }
+    return r;
+}
+#define REVERSE(v) reverse_lanes(v)
+#define INTERLEAVE_LO(a, b) interleave((a), (b), 0)
+#define INTERLEAVE_HI(a, b) interleave((a), (b), 1)
+#endif
+
 /* (ar + j ai)(wr + j wi), w a scalar twiddle */
 #define CMUL_RE(ar, ai, wr, wi) ((ar) * (wr) - (ai) * (wi))
 #define CMUL_IM(ar, ai, wr, wi) ((ar) * (wi) + (ai) * (wr))
@@ -98,16 +130,20 @@ static inline __attribute__((always_inline)) vf load_run(const float *xf, int fi
 {
     if (run > 0)
         return ld(xf + first);
-    return __builtin_shuffle(ld(xf + first - (FL - 1)), (vi){7, 6, 5, 4, 3, 2, 1, 0});
+    return REVERSE(ld(xf + first - (FL - 1)));
 }
 
 CLONES static void rows(const float *x, Py_ssize_t frames, Py_ssize_t channels, const int *ia, const int *ib,
                         const float *ca, const float *cb, Py_ssize_t n_rows, float *out, Py_ssize_t col,
                         float *lo_out, float *hi_out, int *finite_out)
 {
-    /* v - v is 0 for a finite v and NaN for an infinite or NaN one */
-    vf lo = {0}, hi = {0}, bad = {0};
-    float lo_s = 0.0f, hi_s = 0.0f, bad_s = 0.0f;
+    /* Non-finite samples by their bits (exponent all ones: an infinity or a NaN), an integer
+     * test that -ffast-math cannot fold away the way it may fold v - v or v != v. */
+    const vi exp_mask = (vi){0} + 0x7f800000;
+    vf lo = {0}, hi = {0};
+    vi bad = {0};
+    float lo_s = 0.0f, hi_s = 0.0f;
+    int bad_s = 0;
     signed char run_a[MAX_ROW_GROUPS], run_b[MAX_ROW_GROUPS];
     Py_ssize_t groups = n_rows / FL < MAX_ROW_GROUPS ? n_rows / FL : MAX_ROW_GROUPS;
     /* run_a[g] != 0: group g is two vector loads (both index lists run); the signs give the directions */
@@ -126,13 +162,15 @@ CLONES static void rows(const float *x, Py_ssize_t frames, Py_ssize_t channels, 
             vi below = v < lo, above = v > hi;
             lo = (vf)(((vi)v & below) | ((vi)lo & ~below));
             hi = (vf)(((vi)v & above) | ((vi)hi & ~above));
-            bad += (v - v) * (v - v);
+            bad |= ((vi)v & exp_mask) == exp_mask;
         }
         for (; c < channels; c++) {
             float v = xf[c];
             lo_s = v < lo_s ? v : lo_s;
             hi_s = v > hi_s ? v : hi_s;
-            bad_s += (v - v) * (v - v);
+            unsigned int u;
+            memcpy(&u, &v, sizeof u);
+            bad_s |= (u & 0x7f800000u) == 0x7f800000u;
         }
         for (Py_ssize_t g = 0, r = 0; g < groups; g++, r += FL) {
             if (run_a[g])
@@ -145,10 +183,10 @@ CLONES static void rows(const float *x, Py_ssize_t frames, Py_ssize_t channels, 
     for (int l = 0; l < FL; l++) {
         lo_s = lo[l] < lo_s ? lo[l] : lo_s;
         hi_s = hi[l] > hi_s ? hi[l] : hi_s;
-        bad_s += bad[l];
+        bad_s |= bad[l] != 0;
     }
     *lo_out = lo_s, *hi_out = hi_s;
-    *finite_out = bad_s == 0.0f; /* a NaN sum compares unequal */
+    *finite_out = !bad_s;
 }
 
 /* One stage: length L = p * m, stride s (in vectors). Reads x, writes y planes.
@@ -305,10 +343,8 @@ CLONES static void rfft_columns(const float *x, Py_ssize_t x_stride, Py_ssize_t 
             vf xr_ = er + CMUL_RE(orr, oi, wr, wi), xi_ = ei + CMUL_IM(orr, oi, wr, wi);
             float *o = out + 2 * (k * n_cols + c0);
             if (nc == FL) {
-                vf lo = __builtin_shuffle(xr_, xi_, (vi){
-                    0, 8, 1, 9, 2, 10, 3, 11});
-                vf hi = __builtin_shuffle(xr_, xi_, (vi){
-                    4, 12, 5, 13, 6, 14, 7, 15});
+                vf lo = INTERLEAVE_LO(xr_, xi_);
+                vf hi = INTERLEAVE_HI(xr_, xi_);
                 st(o, lo);
                 st(o + FL, hi);
             } else {
