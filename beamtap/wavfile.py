@@ -1,15 +1,20 @@
-"""Multichannel WAV files, read and written block by block.
+"""Multichannel WAV files, read and written block by block, of any length.
 
 Reads PCM 16/24/32-bit integer and 32-bit IEEE float (plain or
-WAVE_FORMAT_EXTENSIBLE); writes 32-bit float or 24-bit integer. The writer
-keeps the RIFF and data sizes in the header true after every flush, so a
-file cut off by a crash or power loss is still a valid WAV of everything
-flushed before (any WAV reader, scipy.io.wavfile included, reads it).
+WAVE_FORMAT_EXTENSIBLE), as RIFF WAVE or RF64; writes 32-bit float or
+24-bit integer. The writer keeps the sizes in the header true after every
+flush, so a file cut off by a crash or power loss is still a valid WAV of
+everything flushed before (any WAV reader, scipy.io.wavfile included, reads
+it). Its header reserves room for an RF64 ``ds64`` chunk (a ``JUNK`` chunk
+of that size): when the file outgrows the 32-bit sizes of RIFF (4 GiB) the
+header becomes RF64 in place, with the 64-bit sizes in ``ds64``.
 
 References
 ----------
 Microsoft/IBM, "Multimedia Programming Interface and Data Specifications
-1.0" (1991), RIFF WAVE format; Microsoft, "WAVEFORMATEXTENSIBLE" (2017).
+1.0" (1991), RIFF WAVE format; Microsoft, "WAVEFORMATEXTENSIBLE" (2017);
+EBU Tech 3306, "MBWF / RF64: An extended File Format for Audio" (2009):
+the ``ds64`` chunk, and the ``JUNK`` chunk reserved for it.
 """
 
 from __future__ import annotations
@@ -23,6 +28,10 @@ import numpy as np
 from beamtap.errors import UsageError
 
 PCM, IEEE_FLOAT, EXTENSIBLE = 1, 3, 0xFFFE
+#: Largest RIFF size field; past it the writer switches to RF64 (EBU Tech 3306).
+RIFF_LIMIT = 0xFFFFFFFF
+#: The ds64 chunk body: RIFF size, data size, sample count (64-bit each), table length (32-bit).
+DS64_BYTES = 28
 
 
 class WavError(UsageError):
@@ -41,7 +50,9 @@ class WavReader:
     samplerate_hz : int
     channels : int
     frames : int
-        Total frames in the data chunk.
+        Frames in the data chunk that are in the file.
+    truncated : bool
+        The header promises more frames (``frames_promised``) than the file holds.
     sample_format : str
         ``"int16"``, ``"int24"``, ``"int32"`` or ``"float32"``.
 
@@ -68,8 +79,10 @@ class WavReader:
 
     def _parse(self):
         head = self._f.read(12)
-        if len(head) < 12 or head[:4] != b"RIFF" or head[8:12] != b"WAVE":
-            self._fail("no RIFF/WAVE header")
+        if len(head) < 12 or head[:4] not in (b"RIFF", b"RF64") or head[8:12] != b"WAVE":
+            self._fail("no RIFF/WAVE or RF64 header")
+        rf64 = head[:4] == b"RF64"
+        data_size64 = None
         fmt = None
         size_on_disk = os.fstat(self._f.fileno()).st_size
         while True:
@@ -77,7 +90,12 @@ class WavReader:
             if len(ch) < 8:
                 self._fail("no data chunk")
             cid, size = ch[:4], struct.unpack("<I", ch[4:])[0]
-            if cid == b"fmt ":
+            if cid == b"ds64":
+                body = self._f.read(size + (size & 1))
+                if len(body) < 24:
+                    self._fail("ds64 chunk too short")
+                data_size64 = struct.unpack("<Q", body[8:16])[0]
+            elif cid == b"fmt ":
                 body = self._f.read(size + (size & 1))
                 if len(body) < 16:
                     self._fail("fmt chunk too short")
@@ -90,8 +108,15 @@ class WavReader:
                     self._fail("data chunk before fmt chunk")
                 self._data_start = self._f.tell()
                 available = size_on_disk - self._data_start
-                # A header not updated before a crash: read what is there.
+                if rf64 and size == RIFF_LIMIT:
+                    if data_size64 is None:
+                        self._fail("RF64 without a ds64 chunk")
+                    size = data_size64
+                # A header not updated before a crash (size 0) reads what is there; a file shorter
+                # than its header says is read to its end, and says so (truncated, frames_promised).
                 data_size = size if 0 < size <= available else available
+                self.truncated = size > available
+                self._promised_bytes = size
                 break
             else:
                 self._f.seek(size + (size & 1), 1)
@@ -104,6 +129,7 @@ class WavReader:
         self.sample_format = kinds[(tag, bits)]
         self.channels, self.samplerate_hz, self._width = nch, rate, bits // 8
         self.frames = data_size // align
+        self.frames_promised = self._promised_bytes // align if self.truncated else self.frames
         self._next = 0
 
     def read(self, frames: int):
@@ -127,6 +153,12 @@ class WavReader:
         clipped = int(np.count_nonzero((v >= full - 1) | (v <= -full)))
         return (v / full).astype(np.float32).reshape(n, self.channels), clipped
 
+    def seek(self, frame: int) -> None:
+        """Continue reading at ``frame`` (0 .. frames)."""
+        frame = min(max(int(frame), 0), self.frames)
+        self._f.seek(self._data_start + frame * self.channels * self._width)
+        self._next = frame
+
     def close(self):
         self._f.close()
 
@@ -146,9 +178,13 @@ class WavWriter:
     samplerate_hz : int
     channels : int
     sample_format : {"float32", "int24"}
+    rf64_at_bytes : int, optional
+        RIFF size at which the header becomes RF64 (default: the 4 GiB limit;
+        smaller only to test the switch on a small file).
     """
 
-    def __init__(self, path, samplerate_hz: int, channels: int, sample_format: str = "float32"):
+    def __init__(self, path, samplerate_hz: int, channels: int, sample_format: str = "float32",
+                 rf64_at_bytes: int | None = None):
         if sample_format not in ("float32", "int24"):
             raise ValueError(f"sample_format={sample_format!r}: expected 'float32' or 'int24'")
         self.path, self.channels, self.sample_format = str(path), int(channels), sample_format
@@ -164,8 +200,10 @@ class WavWriter:
         tag = IEEE_FLOAT if sample_format == "float32" else PCM
         align = self.channels * self._width
         # fmt chunk of 18 bytes (cbSize = 0) for float, 16 for PCM; a fact chunk is not needed by readers.
-        self._data_start = 44
+        self._data_start = 12 + 8 + DS64_BYTES + 8 + 16 + 8
+        self._rf64_at = RIFF_LIMIT if rf64_at_bytes is None else int(rf64_at_bytes)
         self._write_whole(b"RIFF" + struct.pack("<I", 0) + b"WAVE"
+                          + b"JUNK" + struct.pack("<I", DS64_BYTES) + bytes(DS64_BYTES)
                           + b"fmt " + struct.pack("<IHHIIHH", 16, tag, self.channels, self.samplerate_hz,
                                                   self.samplerate_hz * align, align, 8 * self._width)
                           + b"data" + struct.pack("<I", 0), 0)
@@ -206,11 +244,34 @@ class WavWriter:
                 pass  # nothing more can be done; the caller reports the first error
             raise
 
+    def skip(self, frames: int) -> None:
+        """Append ``frames`` frames of silence without writing them: the file grows sparse where the
+        file system allows (a gap in a long recording costs no disk)."""
+        if frames <= 0:
+            return
+        end = self.bytes_written + int(frames) * self.channels * self._width
+        try:
+            os.ftruncate(self._f.fileno(), end)  # new bytes read as zeros: silence in both formats
+            self._f.seek(end)
+        except OSError:
+            self._write_whole(b"", self.bytes_written)
+            raise
+        self.frames += int(frames)
+
     def _update_header(self):
         # Overwrites bytes that exist already: needs no new space, so it works on a full disk too.
+        fd = self._f.fileno()
         data_bytes = self.frames * self.channels * self._width
-        os.pwrite(self._f.fileno(), struct.pack("<I", self._data_start - 8 + data_bytes), 4)
-        os.pwrite(self._f.fileno(), struct.pack("<I", data_bytes), self._data_start - 4)
+        riff = self._data_start - 8 + data_bytes
+        if riff < self._rf64_at:
+            os.pwrite(fd, b"RIFF" + struct.pack("<I", riff), 0)
+            os.pwrite(fd, struct.pack("<I", data_bytes), self._data_start - 4)
+            return
+        # RF64 (EBU Tech 3306): the reserved JUNK chunk becomes ds64 with the 64-bit sizes; the
+        # 32-bit size fields say 0xFFFFFFFF ("see ds64").
+        os.pwrite(fd, b"ds64" + struct.pack("<IQQQI", DS64_BYTES, riff, data_bytes, self.frames, 0), 12)
+        os.pwrite(fd, struct.pack("<I", RIFF_LIMIT), self._data_start - 4)
+        os.pwrite(fd, b"RF64" + struct.pack("<I", RIFF_LIMIT), 0)
 
     def flush(self, sync: bool = False) -> None:
         """Make the header match the data written so far and push to the OS (and disk if ``sync``)."""

@@ -301,6 +301,9 @@ def process(config: Config | None, input_path, out_dir, allow_mismatch: bool = F
     with WavReader(input_path) as reader:
         _check_input(config, input_path, reader.samplerate_hz, reader.channels)
         total = reader.frames
+        if reader.truncated:
+            warn(f"{input_path}: the header promises {reader.frames_promised} frames, the file holds {total}; "
+                 "processing what is there")
         _make_folder(out)
 
         def blocks():
@@ -418,8 +421,7 @@ def _process_runs(config: Config, runs, out: Path, source: str, input_format: st
                     counts["gaps"] += 1
                     counts["gap_frames"] += gap
                     if audio_w is not None:
-                        for k in range(0, gap, 65536):
-                            audio_w.write(np.zeros((min(65536, gap - k), n_audio), np.float32))
+                        audio_w.skip(gap)  # silence, sparse on disk
                 bf.reset(first)
                 run_end = first + frames
                 skip = d  # the first D output frames precede the run's first input frame

@@ -366,7 +366,7 @@ def test_process_uses_the_sessions_own_config_and_refuses_a_mismatch(tmp_path):
     seg = segments(session, "raw")[0]
     path = session / seg["file"]
     with open(path, "r+b") as f:
-        f.truncate(44 + 1000 * 8 * 4)
+        f.truncate(80 + 1000 * 8 * 4)  # the 80-byte header, then 1000 frames
     r = _run_cli("process", session, "--out", tmp_path / "short")
     assert r.returncode == 0, r.stderr
     assert f"1000 frames on disk, the manifest says {seg['frames']}" in r.stderr

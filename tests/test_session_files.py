@@ -82,5 +82,5 @@ def test_wav_has_whole_frames_and_no_stray_bytes(full_session):
     (path,) = full_session.glob("raw-*.wav")
     fs, x = wavfile.read(path)  # an independent reader
     assert fs == 16000 and x.shape[1] == 3 and len(x) > 0
-    assert os.path.getsize(path) == 44 + x.size * 4  # header + data, nothing after
+    assert os.path.getsize(path) == 80 + x.size * 4  # header (with room for RF64) + data, nothing after
     assert len(x) % 512 == 0 and np.all(np.isfinite(x))
