@@ -426,6 +426,10 @@ def main(argv=None) -> int:
     except (UsageError, EndpointError, ServiceError, TimeoutError) as exc:
         sys.stderr.write(f"beamtap {args.func.__name__[4:]}: error: {exc}\n")
         return 2
+    except OSError as exc:  # a path the command could not read or write: one line, the path named
+        where = f"{exc.filename}: " if exc.filename else ""
+        sys.stderr.write(f"beamtap {args.func.__name__[4:]}: error: {where}{exc.strerror or exc}\n")
+        return 2
     except KeyboardInterrupt:
         return 130
     except BrokenPipeError:

@@ -91,3 +91,32 @@ def test_pattern_refuses_what_cannot_be_drawn(tmp_path, args, words):
     r, _ = _run(["pattern", "ok.toml", *args, "--out", "p.csv"], tmp_path)
     assert r.returncode == 2 and words in r.stderr and "Traceback" not in r.stderr
     assert not (tmp_path / "p.csv").exists()
+
+
+def test_output_paths_that_cannot_be_written_are_one_line(tmp_path):
+    (tmp_path / "ok.toml").write_text(_config())
+    assert _run(["simulate", "ok.toml", "--seconds", "0.3", "--out", "in.wav"], tmp_path)[0].returncode == 0
+    (tmp_path / "out").mkdir()
+    (tmp_path / "out" / "power.csv").mkdir()  # a folder where an output file should go
+    r, _ = _run(["process", "ok.toml", "in.wav", "--out", "out", "--overwrite"], tmp_path)
+    assert r.returncode == 2 and "power.csv" in r.stderr and "Traceback" not in r.stderr, r.stderr
+    r, _ = _run(["pattern", "ok.toml", "--freq", "1000", "--out", "/missing/p.csv"], tmp_path)
+    assert r.returncode == 2 and "/missing" in r.stderr and r.stderr.count("\n") == 1
+    (tmp_path / "afile").write_text("x")
+    r, _ = _run(["record", "--out", "afile", "--seconds", "1"], tmp_path)
+    assert r.returncode == 2 and "afile" in r.stderr and "Traceback" not in r.stderr
+
+
+def test_fft_refuses_what_it_would_misread():
+    """A float64 frame read as float32 memory gives garbage (NaN): refused at the boundary instead."""
+    import numpy as np
+
+    from beamtap.service.engine.beamformer import COMPILED_AVAILABLE
+    from beamtap.service.engine.transform import ColumnFFT
+
+    fft = ColumnFFT(64, compiled=COMPILED_AVAILABLE)
+    with pytest.raises(ValueError, match="float32"):
+        fft(np.zeros((64, 8)))
+    with pytest.raises(ValueError, match="not C-contiguous"):
+        fft(np.zeros((8, 64), np.float32).T)
+    assert fft(np.ones((64, 8), np.float32))[0, 0] == pytest.approx(64.0)

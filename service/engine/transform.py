@@ -102,6 +102,12 @@ class ColumnFFT:
 
     def __call__(self, frame: np.ndarray) -> np.ndarray:
         """Spectrum ``(n // 2 + 1, columns)`` complex64 of ``frame`` ``(n, columns)`` float32, C order."""
+        # The compiled loop reads raw float32 memory: anything else would be misread, not converted.
+        if not (isinstance(frame, np.ndarray) and frame.dtype == np.float32 and frame.ndim == 2
+                and frame.flags.c_contiguous and frame.shape[0] == self.n):
+            raise ValueError(f"frame: expected a C-contiguous float32 array of shape ({self.n}, columns), got "
+                             f"{getattr(frame, 'dtype', type(frame).__name__)} "
+                             f"{getattr(frame, 'shape', '')}{'' if getattr(frame, 'flags', None) is None or frame.flags.c_contiguous else ' (not C-contiguous)'}")
         if self.compiled:
             out = np.empty((self.n // 2 + 1, frame.shape[1]), np.complex64)
             _kernels.rfft(frame, frame.shape[1], frame.shape[1], self.n, self._radices, self._twiddles,
