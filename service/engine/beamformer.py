@@ -101,6 +101,32 @@ class BeamSet:
             raise ValueError(f"shading={self.shading!r}: expected one of {', '.join(shading.SHADINGS)}")
 
 
+@dataclass(frozen=True)
+class EngineState:
+    """What a :class:`Beamformer` needs to continue a stream exactly (see :meth:`Beamformer.state`).
+
+    Attributes
+    ----------
+    next_sample : int
+        Stream index of the next input frame.
+    power_origin : int
+        Stream index the power blocks are aligned to (the start or the last reset).
+    n_fft : int
+        Frame length.
+    history : ndarray of float32, shape (n_fft, rows)
+        The last ``n_fft`` frames of the history rows.
+    pending_start, pending_spec : tuple
+        Power blocks waiting for a full batch: their starts and band spectra.
+    """
+
+    next_sample: int
+    power_origin: int
+    n_fft: int
+    history: np.ndarray
+    pending_start: tuple = ()
+    pending_spec: tuple = ()
+
+
 @dataclass
 class BlockResult:
     """What one call of :meth:`Beamformer.process` returns.
@@ -495,6 +521,34 @@ class Beamformer:
     def retarget(self, beams: BeamSet) -> BlockResult:
         """Build and apply a new beam set in one call (see :meth:`apply`)."""
         return self.apply(self.prepare(beams))
+
+    def state(self) -> "EngineState":
+        """The streaming state, to resume exactly in another engine (another process, another day).
+
+        Like the ``zi``/``zf`` state of :func:`scipy.signal.lfilter`: an
+        engine built with the same array, beams and block length and given
+        this state with :meth:`resume` produces exactly what this one would
+        have produced next. Not available during a retarget's crossfade.
+        """
+        if self._fade_from is not None:
+            raise ValueError("state(): a retarget's crossfade is in progress; take the state a block later")
+        n_fft = self._steer[1]
+        return EngineState(next_sample=self._sample, power_origin=self._power_origin, n_fft=n_fft,
+                           history=self._buf[self._pos - n_fft:self._pos].copy(),
+                           pending_start=tuple(self._pending_start),
+                           pending_spec=tuple(np.array(p) for p in self._pending_spec))
+
+    def resume(self, state: "EngineState") -> None:
+        """Continue from ``state`` (see :meth:`state`); its frame must fit this engine's beams."""
+        n_fft = self._steer[1]
+        if state.n_fft != n_fft or state.history.shape != (n_fft, self._basis.n_rows):
+            raise ValueError(f"state: frames of {state.n_fft} samples over {state.history.shape[1]} rows, this engine "
+                             f"uses {n_fft} over {self._basis.n_rows}: resume needs the same array, beams and block")
+        self.reset(state.next_sample)
+        self._buf[:n_fft] = state.history
+        self._power_origin = int(state.power_origin)
+        self._pending_start = list(state.pending_start)
+        self._pending_spec = [np.array(p) for p in state.pending_spec]
 
     def reset(self, first_sample: int = 0) -> None:
         """Forget all history (after a gap) and restart at ``first_sample``.
