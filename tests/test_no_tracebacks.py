@@ -120,3 +120,10 @@ def test_fft_refuses_what_it_would_misread():
     with pytest.raises(ValueError, match="not C-contiguous"):
         fft(np.zeros((8, 64), np.float32).T)
     assert fft(np.ones((64, 8), np.float32))[0, 0] == pytest.approx(64.0)
+
+
+def test_a_band_near_zero_hertz_is_refused_before_its_filter_is_built(tmp_path):
+    (tmp_path / "bad.toml").write_text(_config(band="[0.02, 0.2]"))
+    r, took = _run(["check", "bad.toml"], tmp_path)
+    assert r.returncode == 2 and "a band edge close to 0 Hz" in r.stderr and r.stderr.count("\n") == 1
+    assert took < 30

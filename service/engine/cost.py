@@ -38,6 +38,9 @@ MAX_POWER_BEAMS = 20000
 MAX_AUDIO_BEAMS = 64
 #: Most memory one beam set's steering and band evaluators may take, bytes.
 MAX_WORK_BYTES = 512 * 2**20
+#: Longest FFT frame (samples): set by the band filters' transition widths (a band edge close to 0 Hz
+#: or to Nyquist forces a narrow transition and a long filter).
+MAX_FRAME_SAMPLES = 2**21
 #: Default share of the block duration a beam set's estimated processing may take.
 DEFAULT_MAX_BLOCK_SHARE = 0.7
 
@@ -138,14 +141,20 @@ def block_work(rows: int, n_power: int, n_audio: int, bands_hz, transition_hz, s
           + _NS_BLOCK)
     steering_bytes = 8 * rows * (n_power * span + n_audio * half)
     ns += _NS_STREAM_BYTE * max(0, steering_bytes - _CACHE_BYTES)
+    # The history (frame + room for four frames or blocks, float32 rows) and the spectra of a frame.
+    history_bytes = 4 * rows * (n_fft + max(4 * block_frames, 4 * n_fft)) + 8 * rows * half
     # Each band evaluator's set-up: a (block, 2 bins) matrix and its (2 bins)^2 Gram matrix, float64.
     evaluator_bytes = sum(8 * (block_frames * 2 * k + 4 * k * k) for k in bins)
-    return ns, steering_bytes + evaluator_bytes, n_fft
+    return ns, steering_bytes + evaluator_bytes + history_bytes, n_fft
 
 
 def check_memory(work_bytes: int, n_power: int, n_audio: int, rows: int, n_fft: int = 0) -> None:
     """Refuse a beam set whose steering data and band evaluators exceed :data:`MAX_WORK_BYTES`."""
     frame = f" with frames of {n_fft} samples" if n_fft else ""
+    if n_fft > MAX_FRAME_SAMPLES:
+        raise AdmissionError(f"the band filters need frames of {n_fft} samples, more than {MAX_FRAME_SAMPLES}: a band "
+                             "edge close to 0 Hz or to half the sample rate forces a narrow transition and a long "
+                             "filter; move the band edge or give a wider transition_hz")
     if work_bytes > MAX_WORK_BYTES:
         raise AdmissionError(f"{n_power} power beams and {n_audio} audio beams over {rows} sensors{frame} need "
                              f"{work_bytes / 2**20:.0f} MB of steering data, more than "
