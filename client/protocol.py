@@ -21,6 +21,9 @@ import msgpack
 import numpy as np
 
 PROTOCOL_VERSION = 2
+#: Default endpoints: the stream and the control socket, on loopback (the one definition).
+DEFAULT_PUBLISH = "tcp://127.0.0.1:5560"
+DEFAULT_CONTROL = "tcp://127.0.0.1:5561"
 TOPICS = ("power", "audio", "raw", "status", "beams")
 #: Largest control request accepted, bytes (a 20,000-direction list is about 360 kB of msgpack).
 MAX_REQUEST_BYTES = 512 * 1024

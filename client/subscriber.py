@@ -19,8 +19,7 @@ import zmq
 
 from . import protocol
 
-DEFAULT_PUBLISH = "tcp://127.0.0.1:5560"
-DEFAULT_CONTROL = "tcp://127.0.0.1:5561"
+DEFAULT_PUBLISH, DEFAULT_CONTROL = protocol.DEFAULT_PUBLISH, protocol.DEFAULT_CONTROL
 
 
 def control_for(endpoint: str) -> str:

@@ -17,6 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
+from beamtap.client.protocol import DEFAULT_CONTROL, DEFAULT_PUBLISH
 from beamtap.errors import ConfigError
 
 from .engine import cost
@@ -29,8 +30,8 @@ from .engine.shading import SHADINGS
 SOURCES = ("soundcard", "file", "simulated", "stream", "session")
 SIGNALS = ("noise", "tone", "chirp")
 RECORD_KINDS = ("raw", "audio", "power")
-DEFAULT_PUBLISH = "tcp://127.0.0.1:5560"
-DEFAULT_CONTROL = "tcp://127.0.0.1:5561"
+#: Messages queued per subscriber before it loses messages (the one definition).
+DEFAULT_SEND_QUEUE = 64
 _REQUIRED = object()
 
 
@@ -210,7 +211,7 @@ class InputConfig:
 class PublishConfig:
     endpoint: str = DEFAULT_PUBLISH
     raw: bool = False
-    send_queue: int = 64
+    send_queue: int = DEFAULT_SEND_QUEUE
 
 
 @dataclass(frozen=True)
@@ -624,7 +625,7 @@ def _security(t: _Table) -> SecurityConfig:
 def _publish(t: _Table) -> PublishConfig:
     ep = t.string("endpoint", DEFAULT_PUBLISH)
     raw = t.boolean("raw", False)
-    queue = t.integer("send_queue", 64, low=1, high=100000)
+    queue = t.integer("send_queue", DEFAULT_SEND_QUEUE, low=1, high=100000)
     t.done()
     return PublishConfig(ep, raw, queue)
 

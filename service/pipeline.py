@@ -17,7 +17,7 @@ import time
 import numpy as np
 
 from .engine.beamformer import BeamSet
-from .offline import make_beamformer, summary
+from .assembly import make_beamformer, summary
 
 log = logging.getLogger("beamtap.pipeline")
 

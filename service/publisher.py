@@ -24,6 +24,8 @@ import zmq
 from beamtap.client.protocol import encode
 from beamtap.errors import UsageError
 
+from .config import DEFAULT_SEND_QUEUE
+
 log = logging.getLogger("beamtap.publish")
 
 
@@ -57,7 +59,8 @@ class Publisher:
     #: Messages waiting for the sender thread before new ones are dropped (a few seconds of blocks).
     HANDOVER_MESSAGES = 1000
 
-    def __init__(self, endpoint: str, stream_id: str, send_queue: int = 200, context=None, secure=None):
+    def __init__(self, endpoint: str, stream_id: str, send_queue: int = DEFAULT_SEND_QUEUE, context=None,
+                 secure=None):
         self.stream_id = stream_id
         self._ctx = context or zmq.Context.instance()
         self._sock = self._ctx.socket(zmq.PUB)

@@ -24,7 +24,7 @@ from beamtap.errors import UsageError
 from .config import Config
 from .engine.beamformer import KERNELS_MISSING
 from .engine.cost import AdmissionError
-from .offline import cost_model
+from .assembly import cost_model
 from .control import ControlServer
 from .pipeline import Pipeline
 from .publisher import Publisher

@@ -125,7 +125,7 @@ def test_input_overflow_without_adc_time_is_a_gap_of_the_lost_length(virtual_car
 _OVERFLOW_SCRIPT = """
 import json, types
 import numpy as np
-import beamtap.service.sources as sources
+import beamtap.service.sources.soundcard as sources
 clock = {{"now": 100.0}}
 sources.time.monotonic = lambda: clock["now"]
 src = sources.SoundcardSource("arraycap", {ch}, {fs}, 1024, 48000)

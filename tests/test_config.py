@@ -124,7 +124,7 @@ def test_mackenzie_range_warning_in_check():
 
 def test_too_much_steering_data_is_a_usage_error():
     from beamtap.errors import UsageError
-    from beamtap.service.offline import make_beamformer
+    from beamtap.service.assembly import make_beamformer
 
     huge = _with("line = { count = 8, spacing_m = 0.5 }", "line = { count = 64, spacing_m = 0.5 }").replace(
         "fan = { from_deg = 0.0, to_deg = 180.0, step_deg = 2.0 }",

@@ -1,0 +1,271 @@
+"""``beamtap process``: the engine over a WAV file or a recorded session, offline."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+
+from beamtap import __version__, powertable
+from beamtap.errors import UsageError
+from beamtap.session import json_default
+from beamtap.wavfile import WavReader, WavWriter
+
+from ..assembly import make_beamformer, summary
+from ..config import Config, loads
+from ..engine.beamformer import KERNELS_MISSING
+from .simulate import progress
+
+
+#: The files ``process`` writes into its output folder.
+PROCESS_OUTPUTS = ("power.csv", "beams.csv", "bands.csv", "audio.wav", "summary.json")
+
+
+def session_config(folder) -> Config:
+    """The config a session was recorded with (its manifest's first record)."""
+    from beamtap.session import MANIFEST, read_manifest  # noqa: PLC0415
+
+    folder = Path(folder)
+    if not (folder / MANIFEST).exists():
+        raise UsageError(f"{folder}: not a beamtap session (no {MANIFEST})")
+    first = (read_manifest(folder) or [{}])[0]
+    if first.get("type") != "session" or not isinstance(first.get("config"), str):
+        raise UsageError(f"{folder / MANIFEST}: the session does not hold its config; give one with --config")
+    return loads(first["config"], f"{folder / MANIFEST} (the session's config)")
+
+
+def config_differences(stored: Config, given: Config) -> list:
+    """What differs between a session's config and another, in the parts that decide whether its
+    recordings can be beamformed with the other (array, channels, medium, sample rate)."""
+    a, b = stored.geometry, given.geometry
+    out = []
+    if a.n_sensors != b.n_sensors or not np.allclose(a.positions_m, b.positions_m, atol=1e-6):
+        out.append(f"array: the session has {a.n_sensors} sensors ({a.kind}, aperture {a.aperture_m:.3f} m), "
+                   f"the config {b.n_sensors} ({b.kind}, aperture {b.aperture_m:.3f} m)")
+    elif not (np.array_equal(a.channels, b.channels) and np.array_equal(a.dead, b.dead)):
+        out.append("channel map or dead sensors differ")
+    if a.n_input_channels != b.n_input_channels:
+        out.append(f"input channels: {a.n_input_channels} in the session, {b.n_input_channels} in the config")
+    if abs(stored.sound_speed_mps - given.sound_speed_mps) > 1e-6 * stored.sound_speed_mps:
+        out.append(f"medium: sound speed {stored.sound_speed_mps:.2f} m/s ({stored.medium.source}) in the session, "
+                   f"{given.sound_speed_mps:.2f} m/s ({given.medium.source}) in the config")
+    if stored.input.samplerate_hz != given.input.samplerate_hz:
+        out.append(f"sample rate: {stored.input.samplerate_hz:g} Hz in the session, "
+                   f"{given.input.samplerate_hz:g} Hz in the config")
+    return out
+
+
+def process(config: Config | None, input_path, out_dir, allow_mismatch: bool = False, warn=None,
+            start_utc: float | None = None) -> dict:
+    """Beamform a WAV file or a recorded session folder (the ``process`` command).
+
+    ``config`` None takes a session's own stored config (a WAV needs one).
+    A given config that differs from a session's in array, channels, medium
+    or sample rate is refused unless ``allow_mismatch``. ``warn`` (a
+    callable taking one line) hears about segments shorter than the
+    manifest says. Outputs are created only once the inputs are checked.
+    ``start_utc`` (POSIX seconds) dates a WAV's first sample; a session's
+    rows are dated from its segments.
+    Returns the summary it writes to ``summary.json``.
+    """
+    out = Path(out_dir)
+    warn = warn or (lambda line: None)
+    if KERNELS_MISSING:
+        warn(KERNELS_MISSING)
+    if Path(input_path).is_dir():
+        stored = session_config(input_path)
+        if config is None:
+            config = stored
+        else:
+            diffs = config_differences(stored, config)
+            if diffs and not allow_mismatch:
+                raise UsageError(f"{config.where} does not match the session {input_path}: {'; '.join(diffs)} "
+                                 "(--allow-mismatch to beamform it anyway)")
+            for d in diffs:
+                warn(f"{input_path}: {d} (processing anyway, --allow-mismatch)")
+        runs, anchors = _session_runs(config, Path(input_path), warn)
+        _make_folder(out)
+        return _process_runs(config, runs, out, str(input_path), "session", anchors)
+    if config is None:
+        raise UsageError(f"{input_path}: a WAV file needs --config FILE (only a session holds its own config)")
+    with WavReader(input_path) as reader:
+        _check_input(config, input_path, reader.samplerate_hz, reader.channels)
+        total = reader.frames
+        if reader.truncated:
+            warn(f"{input_path}: the header promises {reader.frames_promised} frames, the file holds {total}; "
+                 "processing what is there")
+        _make_folder(out)
+
+        def blocks():
+            while True:
+                x, clipped = reader.read(config.input.block_frames)
+                if len(x) == 0:
+                    return
+                yield x, clipped
+
+        runs = [(0, total, reader.channels, reader.sample_format, blocks())]
+        anchors = [] if start_utc is None else [(0, float(start_utc))]
+        return _process_runs(config, runs, out, reader.path, reader.sample_format, anchors)
+
+
+def _utc_mapper(anchors, fs: float):
+    """Stream index -> POSIX UTC seconds from (first_sample, utc) anchors (segment starts); None
+    when there are none (a WAV with no known start)."""
+    if not anchors:
+        return lambda n: None
+    firsts = np.array([a[0] for a in anchors], np.int64)
+    utcs = np.array([a[1] for a in anchors])
+
+    def utc_of(n):
+        i = max(int(np.searchsorted(firsts, n, side="right")) - 1, 0)
+        return float(utcs[i] + (int(n) - firsts[i]) / fs)
+
+    return utc_of
+
+
+def _make_folder(out: Path) -> None:
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise UsageError(f"--out {out}: cannot create folder: {exc.strerror}") from None
+
+
+def _check_input(config: Config, where, samplerate_hz, channels):
+    fs = config.input.samplerate_hz
+    need = config.geometry.n_input_channels
+    if int(round(samplerate_hz)) != int(round(fs)):
+        raise UsageError(f"{where}: sample rate {samplerate_hz:g} Hz does not match "
+                         f"[input] samplerate_hz = {fs:g} in {config.where}")
+    if channels < need:
+        raise UsageError(f"{where}: {channels} channels, but the array in {config.where} "
+                         f"needs {need} (highest channel in its channel map)")
+
+
+def _session_runs(config: Config, folder: Path, warn):
+    """Contiguous runs of a session's raw segments: (first, frames, channels, format, blocks)."""
+    from beamtap.session import MANIFEST, segments  # noqa: PLC0415
+
+    if not (folder / MANIFEST).exists():
+        raise UsageError(f"{folder}: not a beamtap session (no {MANIFEST})")
+    segs = segments(folder, "raw")
+    if not segs:
+        raise UsageError(f"{folder}: the session has no raw segments to beamform")
+    for seg in segs:
+        _check_input(config, folder / seg["file"], seg["samplerate_hz"], seg["channels"])
+        try:
+            with WavReader(folder / seg["file"]) as r:
+                on_disk = r.frames
+        except UsageError as exc:
+            raise UsageError(f"{folder / seg['file']}: {exc}") from None
+        if on_disk < seg["frames"]:
+            warn(f"{folder / seg['file']}: {on_disk} frames on disk, the manifest says {seg['frames']}; "
+                 "the missing end is a gap")
+            seg["frames"] = on_disk
+    runs, current = [], []
+    for seg in segs:
+        if current and seg["first_sample"] != current[-1]["first_sample"] + current[-1]["frames"]:
+            runs.append(current)
+            current = []
+        current.append(seg)
+    runs.append(current)
+    block = config.input.block_frames
+
+    def blocks(run):
+        for seg in run:
+            with WavReader(folder / seg["file"]) as r:
+                left = seg["frames"]
+                while left > 0:
+                    x, clipped = r.read(min(block, left))
+                    if len(x) == 0:
+                        break
+                    left -= len(x)
+                    yield x, clipped
+
+    anchors = [(int(seg["first_sample"]), float(seg["utc"])) for seg in segs if "utc" in seg]
+    return [(run[0]["first_sample"], sum(s["frames"] for s in run), run[0]["channels"],
+             run[0].get("sample_format") or "float32", blocks(run)) for run in runs], anchors
+
+
+def _process_runs(config: Config, runs, out: Path, source: str, input_format: str, anchors=()) -> dict:
+    bf = make_beamformer(config)
+    fs = config.input.samplerate_hz
+    d = bf.bulk_delay_samples
+    block = config.input.block_frames
+    beams = config.beams
+    band_delays = [int(ev.filter.group_delay_samples) for ev in bf.band_filters]
+    power_csv = out / "power.csv"
+    powertable.write_sidecars(power_csv, beams.power_deg, beams.bands_hz, band_delays)
+    utc_of = _utc_mapper(anchors, fs)
+    counts = {"nan": 0, "clipped": 0, "frames": 0, "power_rows": 0, "gaps": 0, "gap_frames": 0}
+    n_audio = len(beams.audio_deg)
+    audio_w = WavWriter(out / "audio.wav", fs, n_audio) if n_audio else None
+    origin = runs[0][0] if runs else 0
+    total = sum(r[1] for r in runs)
+    try:
+        with open(power_csv, "w", encoding="utf-8") as pf:
+            pf.write(powertable.header(len(beams.bands_hz), len(beams.power_deg)) + "\n")
+            end_prev = None
+            for first, frames, channels, fmt, blocks in runs:
+                if end_prev is not None:  # a gap: silence in audio.wav keeps it on the session's time axis
+                    gap = first - end_prev
+                    counts["gaps"] += 1
+                    counts["gap_frames"] += gap
+                    if audio_w is not None:
+                        audio_w.skip(gap)  # silence, sparse on disk
+                bf.reset(first)
+                run_end = first + frames
+                skip = d  # the first D output frames precede the run's first input frame
+
+                def emit(result):
+                    nonlocal skip
+                    if audio_w is not None and len(result.audio):
+                        audio_w.write(result.audio[skip:])
+                        skip = max(0, skip - len(result.audio))
+                    # rows computed from input only (not from the zero tail that flushes the audio)
+                    keep = result.power_first_sample + bf.power_delay_samples + block <= run_end
+                    firsts = result.power_first_sample[keep]
+                    if len(firsts):
+                        pf.write(powertable.rows_text(firsts, [utc_of(n) for n in firsts], result.power_db[keep]))
+                        counts["power_rows"] += len(firsts)
+                    counts["nan"] += result.nan_count
+                    if fmt == "float32":
+                        counts["clipped"] += result.clip_count
+
+                for x, clipped in blocks:
+                    counts["clipped"] += clipped  # integer input: full-scale codes
+                    counts["frames"] += len(x)
+                    emit(bf.process(x))
+                    progress(counts["frames"], total, fs)
+                # Push the last D frames of beam audio out so audio.wav has the input's length.
+                emit(bf.process(np.zeros((d, channels), np.float32)))
+                emit(bf.flush())
+                end_prev = run_end
+    finally:
+        if audio_w is not None:
+            audio_w.close()
+    result = {
+        "software": f"beamtap {__version__}",
+        "input": source,
+        "input_format": input_format,
+        "config_file": config.where,
+        "config_sha256": config.sha256,
+        "config": config.text,
+        "samplerate_hz": fs,
+        "bulk_delay_samples": d,
+        "band_filter_delay_samples": band_delays,
+        "power_delay_samples": bf.power_delay_samples,
+        "power_time_axis": "first_sample is the stream index of the first input sample each power row "
+                           "describes (bulk delay and band filter delays removed; all bands of a row describe "
+                           "the same span); time_utc its UTC time when known; rows cover whole blocks only",
+        "first_sample": int(origin),
+        "frames_processed": counts["frames"],
+        "gaps": counts["gaps"],
+        "gap_frames": counts["gap_frames"],
+        "power_rows": counts["power_rows"],
+        "nan_samples": counts["nan"],
+        "clipped_samples": counts["clipped"],
+        "summary": summary(config, bf),
+    }
+    (out / "summary.json").write_text(json.dumps(result, indent=2, default=json_default))
+    return result
