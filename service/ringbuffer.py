@@ -10,7 +10,10 @@ that straddles a segment boundary, and learns of each gap when it reaches it.
 Thread safety: the producer only advances ``_written`` and appends
 segments; the consumer only advances ``_read``. Under CPython each of those
 integer stores is atomic, and the data are stored before the index that
-publishes them, so no lock is held in the producer's path.
+publishes them, so the data path takes no lock. The one synchronisation
+is a ``threading.Event`` that wakes a waiting reader: setting it takes the
+event's internal lock for a moment (no allocation, no I/O), which is the
+only lock the audio callback ever touches.
 """
 
 from __future__ import annotations
@@ -75,7 +78,7 @@ class RingBuffer:
         """Store frames (n, channels); returns False (and counts) when they do not fit.
 
         Called from the audio callback: no allocation beyond numpy's slice
-        views, no lock, no I/O.
+        views, no I/O; only the reader's wake-up event is set (see the module notes).
         """
         n = len(frames)
         self.frames_offered += n

@@ -15,8 +15,10 @@ class SoundcardSource(Source):
 
     The callback copies into the ring buffer and notes status flags; an
     input overflow reported by PortAudio becomes a gap whose length is
-    estimated from the ADC timestamps (or the callback clock when the
-    driver gives none).
+    measured from the ADC timestamps, or, when the driver gives none, from
+    the frames the callbacks delivered against the monotonic time since the
+    first callback (:meth:`_overflow_frames`). A stream that PortAudio ends
+    on its own (device gone) sets :attr:`error`, which ends the service.
     """
 
     kind = "soundcard"
