@@ -127,3 +127,19 @@ def test_a_band_near_zero_hertz_is_refused_before_its_filter_is_built(tmp_path):
     r, took = _run(["check", "bad.toml"], tmp_path)
     assert r.returncode == 2 and "a band edge close to 0 Hz" in r.stderr and r.stderr.count("\n") == 1
     assert took < 30
+
+
+def test_compiled_sums_refuse_what_they_would_misread():
+    import numpy as np
+
+    from beamtap.service.engine import ArrayGeometry, Beamformer, BeamSet, fan
+    from beamtap.service.engine.beamformer import COMPILED_AVAILABLE
+
+    if not COMPILED_AVAILABLE:
+        pytest.skip("the compiled kernels are not installed")
+    bf = Beamformer(ArrayGeometry.line(8, 0.5), 1500.0, 48000.0, 1024, BeamSet(fan(0, 180, 10)), compiled=True)
+    product = bf._steer[0].power
+    with pytest.raises(ValueError, match="spec: expected a C-contiguous complex64"):
+        product(np.zeros((1, 200, 8), np.complex128), offset=0)
+    with pytest.raises(ValueError, match="chunk: expected a C-contiguous float32"):
+        bf._write_rows(np.zeros((16, 8), np.float64))

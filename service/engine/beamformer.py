@@ -32,7 +32,7 @@ from . import bandpower, cost, shading, steering
 from .directions import unit_vectors
 from .geometry import ArrayGeometry
 from .basis import _Basis
-from .products import COMPILED_AVAILABLE, KERNELS_MISSING, _BeamProduct, _kernels
+from .products import COMPILED_AVAILABLE, KERNELS_MISSING, _BeamProduct, _kernels, need
 from .transform import ColumnFFT, irfft_columns
 
 __all__ = ["COMPILED_AVAILABLE", "KERNELS_MISSING", "BeamSet", "Beamformer", "BlockResult", "EngineState", "sanitize"]
@@ -472,6 +472,7 @@ class Beamformer:
 
     def _write_rows(self, chunk: np.ndarray) -> tuple:
         """The compiled history write at the current position; returns (min, max, all finite) of ``chunk``."""
+        need(chunk, np.float32, "chunk")
         ia, ib, ca, cb = self._basis.kernel_rows
         return _kernels.rows(chunk, len(chunk), chunk.shape[1], ia, ib, ca, cb, len(ia), self._buf, len(self._buf),
                              self._pos)

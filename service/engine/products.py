@@ -27,6 +27,14 @@ _ELEMENTWISE_MAX = 128
 _KERNEL_LANES = 8
 
 
+def need(arr, dtype, name: str) -> None:
+    """The compiled loops read raw memory: refuse (not misread) an array of another dtype or layout."""
+    if not (isinstance(arr, np.ndarray) and arr.dtype == dtype and arr.flags.c_contiguous):
+        raise ValueError(f"{name}: expected a C-contiguous {np.dtype(dtype).name} array, got "
+                         f"{getattr(arr, 'dtype', type(arr).__name__)}"
+                         f"{'' if not isinstance(arr, np.ndarray) or arr.flags.c_contiguous else ' (not C-contiguous)'}")
+
+
 class _BeamProduct:
     """Steered spectra ``Y[j, b, k] = sum_m H[k, b, m] X[j, m, k]`` of a set of beams on given bins,
     for blocks ``j``, from the spectra of the history rows (:class:`_Basis`).
@@ -84,6 +92,7 @@ class _BeamProduct:
         k0 = self.first_bin - offset
         n_blocks, width, n_rows = spec.shape
         if self.compiled:
+            need(spec, np.complex64, "spec")
             y = np.empty((n_blocks, self.n_beams, self.n_bins), np.complex64)
             _kernels.steer(self.h[0], self.h[1] if len(self.h) > 1 else None, spec, n_blocks, width, k0,
                            self.n_bins, n_rows, self.n_plain, len(self.main_out), self.main_out, self.mirror_out,
