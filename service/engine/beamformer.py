@@ -28,12 +28,12 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import bandpower, cost, shading, steering
-from .directions import unit_vectors
-from .geometry import ArrayGeometry
+from . import cost, shading, steering
 from .basis import _Basis
+from .geometry import ArrayGeometry
 from .products import COMPILED_AVAILABLE, KERNELS_MISSING, _BeamProduct, _kernels, need
-from .transform import ColumnFFT, irfft_columns
+from .steerdata import _Steering
+from .transform import irfft_columns
 
 __all__ = ["COMPILED_AVAILABLE", "KERNELS_MISSING", "BeamSet", "Beamformer", "BlockResult", "EngineState", "sanitize"]
 
@@ -142,46 +142,6 @@ class BlockResult:
     power_first_sample: np.ndarray
     nan_count: int = 0
     clip_count: int = 0
-
-
-class _Steering:
-    """Precomputed steering data for one beam set (built off the hot path)."""
-
-    def __init__(self, geometry, basis: _Basis, sound_speed_mps, samplerate_hz, bulk_delay, n_fft, valid,
-                 beams: BeamSet, compiled: bool):
-        self.beams = beams
-        self.fft = ColumnFFT(n_fft, compiled)
-        pos = geometry.centred_positions_m
-        gain = geometry.active_gain
-        trims = geometry.active_trim_s
-        filters = [bandpower.design_band_filter(b, samplerate_hz, beams.transition_hz) for b in beams.bands_hz]
-        # Every band's row describes the same input span: bands with shorter filters are held back
-        # to the longest filter's delay.
-        self.band_delay = max(int(f.group_delay_samples) for f in filters)
-        self.bands = [bandpower.BandPowerEvaluator(f, n_fft, valid, self.band_delay - int(f.group_delay_samples))
-                      for f in filters]
-        self.k1 = min(int(ev.bins[0]) for ev in self.bands)
-        self.k2 = max(int(ev.bins[-1]) for ev in self.bands)
-        power_bins = np.arange(self.k1, self.k2 + 1)
-
-        def product(directions_deg, bins):
-            units = unit_vectors(directions_deg[:, 0], directions_deg[:, 1])
-            w = shading.shading_weights(geometry.kind, geometry.positions_m, geometry.active, units,
-                                        beams.shading, beams.sidelobe_db, beams.nbar) * gain[None, :]
-            tau = steering.relative_delays_samples(pos, trims, units, sound_speed_mps, samplerate_hz)
-            h = steering.steering_spectra(bulk_delay + tau, w, n_fft, bins)
-            pairs = basis.pairs
-            symmetric = pairs is not None and np.allclose(w[:, pairs[0]], w[:, pairs[1]], rtol=1e-9, atol=0.0)
-            return _BeamProduct(h, basis, symmetric, bulk_delay, n_fft, bins, compiled)
-
-        self.power = product(beams.power_deg, power_bins)
-        # the real form leaves out a delay of `lag` samples; each band's factor puts it back
-        self.bands = [ev.delayed(self.power.lag) for ev in self.bands]
-        self.audio = product(beams.audio_deg, np.arange(n_fft // 2 + 1)) if len(beams.audio_deg) else None
-
-    @property
-    def nbytes(self) -> int:
-        return self.power.nbytes + (0 if self.audio is None else self.audio.nbytes)
 
 
 class Beamformer:
