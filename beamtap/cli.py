@@ -81,7 +81,10 @@ def cmd_check(args):
 
     config = load_config(args.config)
     print(offline.check_text(config))
-    problems = offline.check_problems(config)
+    notes = []
+    problems = offline.check_problems(config, notes)
+    for line in notes:
+        print(f"note          {line}")
     for line in problems:
         sys.stderr.write(f"beamtap check: error: {config.where}: {line}\n")
     return 2 if problems else 0

@@ -143,3 +143,15 @@ def test_compiled_sums_refuse_what_they_would_misread():
         product(np.zeros((1, 200, 8), np.complex128), offset=0)
     with pytest.raises(ValueError, match="chunk: expected a C-contiguous float32"):
         bf._write_rows(np.zeros((16, 8), np.float64))
+
+
+def test_check_notes_an_endpoint_in_use_without_failing(tmp_path):
+    """The port may be this config's own running service: a note, not an error."""
+    import zmq
+
+    with zmq.Context.instance().socket(zmq.PUB) as sock:
+        sock.bind("tcp://127.0.0.1:*")
+        busy = sock.getsockopt(zmq.LAST_ENDPOINT).decode()
+        (tmp_path / "ok.toml").write_text(_config() + f'[publish]\nendpoint = "{busy}"\n')
+        r, _ = _run(["check", "ok.toml"], tmp_path)
+    assert r.returncode == 0 and "is in use now (is the service already running?)" in r.stdout, r.stderr

@@ -12,9 +12,10 @@ from ..engine import cost
 from ..engine.beamformer import KERNELS_MISSING
 
 
-def check_problems(config: Config) -> list:
+def check_problems(config: Config, notes: list | None = None) -> list:
     """What would stop this config from running, beyond the config itself: the input (file,
-    session, sound card), the endpoints (can they be bound now), and the array's shape."""
+    session, sound card) and the endpoints (can they be bound now). An endpoint already in use is
+    only a note (appended to ``notes``): it may be this config's own service, running."""
     problems = []
     from ..sources import make_source  # noqa: PLC0415
 
@@ -31,7 +32,10 @@ def check_problems(config: Config) -> list:
             try:
                 sock.bind(endpoint)
             except zmq.ZMQError as exc:
-                problems.append(f"[{name}] endpoint = {endpoint!r}: cannot bind now ({exc.strerror})")
+                if exc.errno == zmq.EADDRINUSE and notes is not None:
+                    notes.append(f"[{name}] endpoint = {endpoint!r} is in use now (is the service already running?)")
+                else:
+                    problems.append(f"[{name}] endpoint = {endpoint!r}: cannot bind now ({exc.strerror})")
     return problems
 
 
