@@ -36,7 +36,6 @@ needs only numpy and the standard library.
 
 from __future__ import annotations
 
-import datetime as dt
 import errno
 import json
 import os
@@ -94,8 +93,8 @@ class WholeRecordFile:
             self._fd = -1
 
 
-def iso(utc: float) -> str:
-    return dt.datetime.fromtimestamp(utc, dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+#: ISO 8601 UTC with microseconds (the one formatter, shared with the power tables).
+iso = powertable.iso_utc
 
 
 class SessionWriter:

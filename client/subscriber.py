@@ -12,6 +12,7 @@ Needs only numpy, pyzmq and msgpack.
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -36,8 +37,6 @@ def secure_client(sock, key=None, server_key=None) -> bool:
     """Make ``sock`` a CURVE client (before it connects) when keys are given, as arguments or in the
     environment (``BEAMTAP_KEY``: this client's secret certificate file; ``BEAMTAP_SERVER_KEY``: the
     service's public certificate file). Returns True when CURVE is on."""
-    import os  # noqa: PLC0415
-
     key = key or os.environ.get("BEAMTAP_KEY") or None
     server_key = server_key or os.environ.get("BEAMTAP_SERVER_KEY") or None
     if key is None and server_key is None:

@@ -94,12 +94,14 @@ class View:
         """(utc of the line's newest moment, mean power dB or None) for ``lines`` lines spanning
         ``history_s`` back from ``now_utc``, newest first."""
         span = self.history_s / max(lines, 1)
-        out = []
-        for r in range(lines):
-            hi, lo = now_utc - r * span, now_utc - (r + 1) * span
-            rows = [p for t, p in self.history if lo < t <= hi]
-            out.append((hi, 10.0 * np.log10(np.mean(rows, axis=0)) if rows else None))
-        return out
+        sums, counts = [None] * lines, [0] * lines
+        for t, p in self.history:  # one pass: each row into its line
+            r = int(np.floor((now_utc - t) / span))  # line r: r spans <= now - t < r + 1 spans
+            if 0 <= r < lines:
+                sums[r] = p if sums[r] is None else sums[r] + p
+                counts[r] += 1
+        return [(now_utc - r * span, 10.0 * np.log10(sums[r] / counts[r]) if counts[r] else None)
+                for r in range(lines)]
 
     def render(self, width: int, height: int, title: str, beams_deg: np.ndarray, latest_db: np.ndarray | None,
                status_line: str, mirror_note: bool, now_utc: float | None = None) -> str:

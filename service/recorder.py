@@ -24,7 +24,6 @@ from beamtap.session import SessionWriter, iso
 
 log = logging.getLogger("beamtap.recorder")
 
-_STOP = object()
 #: Seconds without data while recording before a warning and an ``idle`` manifest record.
 IDLE_S = 5.0
 #: Seconds between the recording status lines in the log.

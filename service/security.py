@@ -38,8 +38,9 @@ from beamtap.errors import UsageError
 log = logging.getLogger("beamtap.security")
 
 OPERATOR, READER = "operator", "reader"
-#: Commands that change the service; reader keys are refused them.
-CHANGES = {"beams": "set", "record": ("start", "stop"), "mark": None, "reload_keys": None}
+#: Requests that change the service (reader keys are refused them): command -> test of the request.
+CHANGES = {"beams": lambda req: "set" in req, "record": lambda req: req.get("action") in ("start", "stop"),
+           "mark": lambda req: True, "reload_keys": lambda req: True}
 #: Seconds between two log lines about the same refused key.
 DENIAL_LOG_S = 60.0
 
@@ -204,12 +205,5 @@ class Guard:
 
 def is_change(req: dict) -> bool:
     """True for a control request that changes the service."""
-    cmd = req.get("cmd")
-    if cmd not in CHANGES:
-        return False
-    rule = CHANGES[cmd]
-    if rule is None:
-        return True
-    if cmd == "beams":
-        return "set" in req
-    return req.get("action") in rule
+    test = CHANGES.get(req.get("cmd"))
+    return bool(test and test(req))
