@@ -17,7 +17,11 @@
  */
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
+#include <pthread.h>
+#include <stdatomic.h>
 #include <string.h>
+#include <time.h>
+#include <unistd.h>
 
 #if defined(__GNUC__) && defined(__x86_64__) && !defined(__clang__)
 /* One clone for AVX2 with FMA, one for any x86-64; chosen once at load (glibc ifunc). */
@@ -133,9 +137,12 @@ static inline __attribute__((always_inline)) vf load_run(const float *xf, int fi
     return REVERSE(ld(xf + first - (FL - 1)));
 }
 
+/* Rows [r_begin, r_end) of every frame (r_begin a multiple of FL), and the scan of input channels
+ * [c_begin, c_end) (c_begin a multiple of FL). */
 CLONES static void rows(const float *x, Py_ssize_t frames, Py_ssize_t channels, const int *ia, const int *ib,
                         const float *ca, const float *cb, Py_ssize_t n_rows, float *out, Py_ssize_t col,
-                        float *lo_out, float *hi_out, int *finite_out)
+                        float *lo_out, float *hi_out, int *finite_out, Py_ssize_t r_begin, Py_ssize_t r_end,
+                        Py_ssize_t c_begin, Py_ssize_t c_end)
 {
     /* Non-finite samples by their bits (exponent all ones: an infinity or a NaN), an integer
      * test that -ffast-math cannot fold away the way it may fold v - v or v != v. */
@@ -145,26 +152,29 @@ CLONES static void rows(const float *x, Py_ssize_t frames, Py_ssize_t channels, 
     float lo_s = 0.0f, hi_s = 0.0f;
     int bad_s = 0;
     signed char run_a[MAX_ROW_GROUPS], run_b[MAX_ROW_GROUPS];
-    Py_ssize_t groups = n_rows / FL < MAX_ROW_GROUPS ? n_rows / FL : MAX_ROW_GROUPS;
+    Py_ssize_t g_begin = r_begin / FL, g_end = r_end / FL;
+    if (g_end - g_begin > MAX_ROW_GROUPS)
+        g_end = g_begin + MAX_ROW_GROUPS;
+    Py_ssize_t groups = g_end - g_begin;
     /* run_a[g] != 0: group g is two vector loads (both index lists run); the signs give the directions */
     for (Py_ssize_t g = 0; g < groups; g++) {
-        run_a[g] = (signed char)run_of(ia + g * FL);
-        run_b[g] = (signed char)run_of(ib + g * FL);
+        run_a[g] = (signed char)run_of(ia + (g_begin + g) * FL);
+        run_b[g] = (signed char)run_of(ib + (g_begin + g) * FL);
         if (!run_b[g])
             run_a[g] = 0;
     }
     for (Py_ssize_t f = 0; f < frames; f++) {
         const float *xf = x + f * channels;
         float *o = out + (col + f) * n_rows;
-        Py_ssize_t c = 0;
-        for (; c + FL <= channels; c += FL) {
+        Py_ssize_t c = c_begin;
+        for (; c + FL <= c_end; c += FL) {
             vf v = ld(xf + c);
             vi below = v < lo, above = v > hi;
             lo = (vf)(((vi)v & below) | ((vi)lo & ~below));
             hi = (vf)(((vi)v & above) | ((vi)hi & ~above));
             bad |= ((vi)v & exp_mask) == exp_mask;
         }
-        for (; c < channels; c++) {
+        for (; c < c_end; c++) {
             float v = xf[c];
             lo_s = v < lo_s ? v : lo_s;
             hi_s = v > hi_s ? v : hi_s;
@@ -172,13 +182,13 @@ CLONES static void rows(const float *x, Py_ssize_t frames, Py_ssize_t channels, 
             memcpy(&u, &v, sizeof u);
             bad_s |= (u & 0x7f800000u) == 0x7f800000u;
         }
-        for (Py_ssize_t g = 0, r = 0; g < groups; g++, r += FL) {
+        for (Py_ssize_t g = 0, r = r_begin; g < groups; g++, r += FL) {
             if (run_a[g])
                 st(o + r, ld(ca + r) * load_run(xf, ia[r], run_a[g]) + ld(cb + r) * load_run(xf, ib[r], run_b[g]));
             else
                 scalar_rows(o, xf, ia, ib, ca, cb, r, r + FL);
         }
-        scalar_rows(o, xf, ia, ib, ca, cb, groups * FL, n_rows);
+        scalar_rows(o, xf, ia, ib, ca, cb, g_end * FL, r_end);
     }
     for (int l = 0; l < FL; l++) {
         lo_s = lo[l] < lo_s ? lo[l] : lo_s;
@@ -291,12 +301,14 @@ static inline __attribute__((always_inline)) void stage(const float *xr, const f
  * in stage order; tw: complex64 twiddles, each stage's (m, p - 1) table W_L^{qk}
  * (L the stage length, q < m = L/p, k = 1 .. p-1) in stage order, then
  * exp(-2 pi j k / n) for k = 0 .. M; scratch: 4 M FL floats. */
+/* Columns [c_begin, c_end) of n_cols (c_begin a multiple of FL): a team's share of the frame. */
 CLONES static void rfft_columns(const float *x, Py_ssize_t x_stride, Py_ssize_t n_cols, Py_ssize_t n,
-                                const int *factors, int n_factors, const float *tw, float *scratch, float *out)
+                                const int *factors, int n_factors, const float *tw, float *scratch, float *out,
+                                Py_ssize_t c_begin, Py_ssize_t c_end)
 {
     Py_ssize_t M = n / 2;
     float *pr = scratch, *pi = scratch + M * FL, *qr = scratch + 2 * M * FL, *qi = scratch + 3 * M * FL;
-    for (Py_ssize_t c0 = 0; c0 < n_cols; c0 += FL) {
+    for (Py_ssize_t c0 = c_begin; c0 < c_end; c0 += FL) {
         Py_ssize_t nc = n_cols - c0 < FL ? n_cols - c0 : FL;
         /* the complex transform of z[m] = x[2m] + j x[2m+1], ping-ponging between the p and q
          * planes; a whole group of columns is read by the first stage straight from the frame */
@@ -357,6 +369,290 @@ CLONES static void rfft_columns(const float *x, Py_ssize_t x_stride, Py_ssize_t 
     }
 }
 
+/* ---- Band power: a quadratic form per steered spectrum ---------------------
+ *
+ * out[q] = sum_c (sum_i v_q[i] f[i, c])^2 for the rows q in [q0, q1): v_q
+ * the interleaved (re, im) floats of one beam's band bins (width floats,
+ * row_stride floats from one row to the next), f (width, f_cols) the band's
+ * factor with its columns padded by zeros to a multiple of 2 FL (see
+ * bandpower.BandPowerEvaluator). Four rows share every load of f; two
+ * vectors of columns at a time keep the eight accumulators in registers. */
+#define QF_ROWS 4
+
+CLONES static void quadform(const float *y, Py_ssize_t row_stride, Py_ssize_t q0, Py_ssize_t q1, Py_ssize_t width,
+                            const float *f, Py_ssize_t f_cols, float *out)
+{
+    for (Py_ssize_t q = q0; q < q1; q += QF_ROWS) {
+        int nq = q1 - q < QF_ROWS ? (int)(q1 - q) : QF_ROWS;
+        const float *v[QF_ROWS];
+        for (int b = 0; b < QF_ROWS; b++) /* rows past the end repeat the last one; their sums are dropped */
+            v[b] = y + (q + (b < nq ? b : nq - 1)) * row_stride;
+        float total[QF_ROWS] = {0};
+        for (Py_ssize_t c0 = 0; c0 < f_cols; c0 += 2 * FL) {
+            vf a0[QF_ROWS] = {{0}}, a1[QF_ROWS] = {{0}};
+            for (Py_ssize_t i = 0; i < width; i++) {
+                vf f0 = ld(f + i * f_cols + c0), f1 = ld(f + i * f_cols + c0 + FL);
+                for (int b = 0; b < QF_ROWS; b++) {
+                    a0[b] += v[b][i] * f0;
+                    a1[b] += v[b][i] * f1;
+                }
+            }
+            for (int b = 0; b < QF_ROWS; b++) {
+                vf s = a0[b] * a0[b] + a1[b] * a1[b];
+                for (int l = 0; l < FL; l++)
+                    total[b] += s[l];
+            }
+        }
+        for (int b = 0; b < nq; b++)
+            out[q + b] = total[b];
+    }
+}
+
+/* ---- A team of threads for one call ---------------------------------------
+ *
+ * A kernel call can be split into parts that run at once: the caller runs
+ * part 0 and the team's helper threads the others, with the GIL released
+ * throughout. Each part writes its own outputs (bins of the steered sums,
+ * column groups of the FFT, frames of the history), so the result is the
+ * same bit for bit whatever the number of parts. Helpers wait for the next
+ * call by spinning for a short while, so that the several calls of one block
+ * hand over in well under a microsecond: a thread put to sleep and woken
+ * through the kernel costs tens of microseconds on a virtual machine (about
+ * 50 µs measured here, 2026-12-05, for a ping-pong between two Python
+ * threads), a tenth of a 64-sensor block. After SPIN_NS without work they
+ * sleep on a condition variable; team_wake lets the caller rouse them ahead
+ * of a block. */
+#define TEAM_MAX 64
+#define SPIN_NS 300000LL
+
+typedef void (*part_fn)(void *job, int part, int parts);
+
+typedef struct Team Team;
+struct helper {
+    Team *team;
+    int part;
+};
+struct Team {
+    PyObject_HEAD
+    int parts, started;
+    long pid; /* a forked child has no helpers: it runs every part itself */
+    pthread_t threads[TEAM_MAX];
+    struct helper helpers[TEAM_MAX];
+    pthread_mutex_t lock, call_lock;
+    pthread_cond_t wake;
+    atomic_ulong round; /* one per call: a helper runs each round exactly once */
+    unsigned long alert; /* bumped by team_wake (under lock): sleepers wake and spin again */
+    atomic_int busy;
+    int stop;
+    part_fn fn;
+    void *job;
+};
+
+static inline void relax(void)
+{
+#if defined(__x86_64__) || defined(__i386__)
+    __builtin_ia32_pause();
+#elif defined(__aarch64__)
+    __asm__ __volatile__("yield");
+#endif
+}
+
+static long long now_ns(void)
+{
+    struct timespec ts;
+    clock_gettime(CLOCK_MONOTONIC, &ts);
+    return ts.tv_sec * 1000000000LL + ts.tv_nsec;
+}
+
+static void *helper_main(void *arg)
+{
+    struct helper *h = arg;
+    Team *t = h->team;
+    unsigned long seen = 0;
+    for (;;) {
+        unsigned long r = atomic_load_explicit(&t->round, memory_order_acquire);
+        if (r == seen) {
+            long long deadline = now_ns() + SPIN_NS;
+            for (int n = 1; (r = atomic_load_explicit(&t->round, memory_order_acquire)) == seen; n++) {
+                relax();
+                if ((n & 255) == 0 && now_ns() > deadline) {
+                    pthread_mutex_lock(&t->lock);
+                    unsigned long alert = t->alert;
+                    while ((r = atomic_load_explicit(&t->round, memory_order_acquire)) == seen && t->alert == alert)
+                        pthread_cond_wait(&t->wake, &t->lock);
+                    pthread_mutex_unlock(&t->lock);
+                    deadline = now_ns() + SPIN_NS; /* woken by work or an alert: spin again */
+                }
+            }
+        }
+        seen = r;
+        if (t->stop)
+            return NULL;
+        if (t->fn != NULL)
+            t->fn(t->job, h->part, t->parts);
+        atomic_fetch_sub_explicit(&t->busy, 1, memory_order_release);
+    }
+}
+
+/* Publish a round (work, a wake-up or the stop) to the helpers. */
+static void team_signal(Team *t, part_fn fn, void *job)
+{
+    t->fn = fn, t->job = job;
+    atomic_store_explicit(&t->busy, t->started, memory_order_relaxed);
+    pthread_mutex_lock(&t->lock);
+    atomic_fetch_add_explicit(&t->round, 1, memory_order_release);
+    pthread_cond_broadcast(&t->wake);
+    pthread_mutex_unlock(&t->lock);
+}
+
+static void team_wait(Team *t)
+{
+    while (atomic_load_explicit(&t->busy, memory_order_acquire) > 0)
+        relax();
+}
+
+/* fn(job, part, parts) for every part; called without the GIL. */
+static void team_run(Team *t, part_fn fn, void *job)
+{
+    if (t == NULL || t->started == 0 || t->pid != (long)getpid()) {
+        int parts = t == NULL ? 1 : t->parts;
+        for (int p = 0; p < parts; p++)
+            fn(job, p, parts);
+        return;
+    }
+    pthread_mutex_lock(&t->call_lock); /* one call at a time: two engines may share nothing else */
+    team_signal(t, fn, job);
+    fn(job, 0, t->parts);
+    team_wait(t);
+    pthread_mutex_unlock(&t->call_lock);
+}
+
+static PyObject *team_new(PyTypeObject *type, PyObject *args, PyObject *kwds)
+{
+    Py_ssize_t parts;
+    static char *names[] = {"threads", NULL};
+    if (!PyArg_ParseTupleAndKeywords(args, kwds, "n", names, &parts))
+        return NULL;
+    if (parts < 1 || parts > TEAM_MAX) {
+        PyErr_Format(PyExc_ValueError, "threads=%zd: expected 1 to %d", parts, TEAM_MAX);
+        return NULL;
+    }
+    Team *t = (Team *)type->tp_alloc(type, 0);
+    if (t == NULL)
+        return NULL;
+    t->parts = (int)parts, t->pid = (long)getpid();
+    pthread_mutex_init(&t->lock, NULL);
+    pthread_mutex_init(&t->call_lock, NULL);
+    pthread_cond_init(&t->wake, NULL);
+    atomic_init(&t->round, 0);
+    atomic_init(&t->busy, 0);
+    for (int i = 1; i < t->parts; i++) {
+        t->helpers[i] = (struct helper){t, i};
+        if (pthread_create(&t->threads[i], NULL, helper_main, &t->helpers[i]) != 0)
+            break;
+        t->started++;
+    }
+    if (t->started != t->parts - 1) { /* the dealloc stops the ones that did start */
+        Py_DECREF(t);
+        PyErr_SetString(PyExc_OSError, "Team: could not start the helper threads");
+        return NULL;
+    }
+    return (PyObject *)t;
+}
+
+/* Stop and join the helpers; later calls run every part on the caller's thread. */
+static void team_stop(Team *t)
+{
+    if (t->pid == (long)getpid() && t->started) {
+        pthread_mutex_lock(&t->call_lock);
+        t->stop = 1;
+        team_signal(t, NULL, NULL);
+        for (int i = 1; i <= t->started; i++)
+            pthread_join(t->threads[i], NULL);
+        t->started = 0;
+        pthread_mutex_unlock(&t->call_lock);
+    }
+}
+
+static void team_dealloc(Team *t)
+{
+    team_stop(t);
+    pthread_mutex_destroy(&t->lock);
+    pthread_mutex_destroy(&t->call_lock);
+    pthread_cond_destroy(&t->wake);
+    Py_TYPE(t)->tp_free((PyObject *)t);
+}
+
+static PyObject *team_wake(Team *t, PyObject *unused)
+{
+    (void)unused;
+    /* sleeping helpers wake and spin, ready for the calls of the next block */
+    if (t->started && t->pid == (long)getpid()) {
+        pthread_mutex_lock(&t->lock);
+        t->alert++;
+        pthread_cond_broadcast(&t->wake);
+        pthread_mutex_unlock(&t->lock);
+    }
+    Py_RETURN_NONE;
+}
+
+static PyObject *team_close(Team *t, PyObject *unused)
+{
+    (void)unused;
+    Py_BEGIN_ALLOW_THREADS
+    team_stop(t);
+    Py_END_ALLOW_THREADS
+    Py_RETURN_NONE;
+}
+
+static PyObject *team_threads(Team *t, void *closure)
+{
+    (void)closure;
+    return PyLong_FromLong(t->started + 1);
+}
+
+static PyMethodDef team_methods[] = {
+    {"wake", (PyCFunction)team_wake, METH_NOARGS, "wake(): rouse sleeping helpers ahead of the next calls."},
+    {"close", (PyCFunction)team_close, METH_NOARGS,
+     "close(): stop the helper threads; later calls run every part on the caller's thread."},
+    {NULL, NULL, 0, NULL},
+};
+
+static PyGetSetDef team_getset[] = {
+    {"threads", (getter)team_threads, NULL, "threads working on a call, the caller's included", NULL},
+    {NULL, NULL, NULL, NULL, NULL},
+};
+
+static PyTypeObject TeamType = {
+    PyVarObject_HEAD_INIT(NULL, 0).tp_name = "beamtap.service.engine._kernels.Team",
+    .tp_basicsize = sizeof(Team),
+    .tp_flags = Py_TPFLAGS_DEFAULT,
+    .tp_doc = "Team(threads): helper threads that run the parts of a kernel call at once.",
+    .tp_new = team_new,
+    .tp_dealloc = (destructor)team_dealloc,
+    .tp_methods = team_methods,
+    .tp_getset = team_getset,
+};
+
+/* The team argument of a kernel: None or a Team. */
+static int as_team(PyObject *obj, Team **out)
+{
+    if (obj == NULL || obj == Py_None) {
+        *out = NULL;
+        return 1;
+    }
+    if (!PyObject_TypeCheck(obj, &TeamType)) {
+        PyErr_Format(PyExc_TypeError, "team: expected a Team or None, got %s", Py_TYPE(obj)->tp_name);
+        return 0;
+    }
+    *out = (Team *)obj;
+    return 1;
+}
+
+static inline Py_ssize_t part_start(Py_ssize_t n, int part, int parts) { return n * part / parts; }
+
+/* ---- Python bindings ------------------------------------------------------ */
+
 static int need(Py_buffer *buf, Py_ssize_t items, Py_ssize_t item_size, const char *name)
 {
     if (buf->len < items * item_size) {
@@ -374,17 +670,33 @@ static void release_all(Py_buffer *const *bufs, int n)
             PyBuffer_Release(bufs[i]);
 }
 
+struct steer_job {
+    const float *h_re, *h_im, *v;
+    Py_ssize_t n_blocks, v_bins, k0, n_bins, n_rows, n_plain, n_beams, n_out, lanes;
+    const int *main_out, *mirror_out;
+    float *y;
+};
+
+static void steer_part(void *arg, int part, int parts)
+{
+    const struct steer_job *j = arg;
+    (j->lanes == 4 ? steer4 : steer8)(j->h_re, j->h_im, j->v, j->n_blocks, j->v_bins, j->k0, j->n_bins, j->n_rows,
+                                      j->n_plain, j->n_beams, j->main_out, j->mirror_out, j->n_out, j->y,
+                                      part_start(j->n_bins, part, parts), part_start(j->n_bins, part + 1, parts));
+}
+
 static PyObject *py_steer(PyObject *self, PyObject *args)
 {
     (void)self;
     Py_buffer h_re, h_im = {0}, v, main_out, mirror_out, y;
-    PyObject *h_im_obj;
+    PyObject *h_im_obj, *team_obj = NULL;
+    Team *team;
     Py_ssize_t n_blocks, v_bins, k0, n_bins, n_rows, n_plain, n_beams, n_out, lanes;
-    if (!PyArg_ParseTuple(args, "y*Oy*nnnnnnny*y*nw*n", &h_re, &h_im_obj, &v, &n_blocks, &v_bins, &k0, &n_bins,
-                          &n_rows, &n_plain, &n_beams, &main_out, &mirror_out, &n_out, &y, &lanes))
+    if (!PyArg_ParseTuple(args, "y*Oy*nnnnnnny*y*nw*n|O", &h_re, &h_im_obj, &v, &n_blocks, &v_bins, &k0, &n_bins,
+                          &n_rows, &n_plain, &n_beams, &main_out, &mirror_out, &n_out, &y, &lanes, &team_obj))
         return NULL;
     int has_im = h_im_obj != Py_None;
-    int ok = has_im ? PyObject_GetBuffer(h_im_obj, &h_im, PyBUF_SIMPLE) == 0 : 1;
+    int ok = as_team(team_obj, &team) && (has_im ? PyObject_GetBuffer(h_im_obj, &h_im, PyBUF_SIMPLE) == 0 : 1);
     if (ok && lanes != 4 && lanes != 8) {
         PyErr_SetString(PyExc_ValueError, "steer: lanes must be 4 or 8");
         ok = 0;
@@ -405,10 +717,11 @@ static PyObject *py_steer(PyObject *self, PyObject *args)
             ok = 0;
         }
     if (ok) {
+        struct steer_job job = {(const float *)h_re.buf, has_im ? (const float *)h_im.buf : NULL, (const float *)v.buf,
+                                n_blocks, v_bins, k0, n_bins, n_rows, n_plain, n_beams, n_out, lanes, mo, mm,
+                                (float *)y.buf};
         Py_BEGIN_ALLOW_THREADS
-        (lanes == 4 ? steer4 : steer8)((const float *)h_re.buf, has_im ? (const float *)h_im.buf : NULL,
-                                       (const float *)v.buf, n_blocks, v_bins, k0, n_bins, n_rows, n_plain, n_beams,
-                                       mo, mm, n_out, (float *)y.buf);
+        team_run(team, steer_part, &job);
         Py_END_ALLOW_THREADS
     }
     Py_buffer *const held[] = {&h_re, &h_im, &v, &main_out, &mirror_out, &y};
@@ -418,15 +731,49 @@ static PyObject *py_steer(PyObject *self, PyObject *args)
     Py_RETURN_NONE;
 }
 
+struct rows_job {
+    const float *x;
+    Py_ssize_t frames, channels, n_rows, col;
+    const int *ia, *ib;
+    const float *ca, *cb;
+    float *out;
+    float lo[TEAM_MAX], hi[TEAM_MAX];
+    int finite[TEAM_MAX];
+};
+
+/* [begin, end) of part `part` of n items in whole groups of FL (the last group may be short). */
+static void fl_share(Py_ssize_t n, int part, int parts, Py_ssize_t *begin, Py_ssize_t *end)
+{
+    Py_ssize_t groups = (n + FL - 1) / FL;
+    *begin = FL * part_start(groups, part, parts);
+    *end = FL * part_start(groups, part + 1, parts);
+    *begin = *begin < n ? *begin : n;
+    *end = *end < n ? *end : n;
+}
+
+static void rows_part(void *arg, int part, int parts)
+{
+    struct rows_job *j = arg;
+    /* Frames, not rows, in shares: a frame's rows share cache lines (16 rows to a line), and
+     * two threads writing one line make it bounce between their cores (measured here,
+     * 2026-12-05: the 16-sensor write three times slower split by rows than by frames). */
+    Py_ssize_t f0 = part_start(j->frames, part, parts), f1 = part_start(j->frames, part + 1, parts);
+    j->lo[part] = j->hi[part] = 0.0f, j->finite[part] = 1;
+    rows(j->x + f0 * j->channels, f1 - f0, j->channels, j->ia, j->ib, j->ca, j->cb, j->n_rows, j->out, j->col + f0,
+         &j->lo[part], &j->hi[part], &j->finite[part], 0, j->n_rows, 0, j->channels);
+}
+
 static PyObject *py_rows(PyObject *self, PyObject *args)
 {
     (void)self;
     Py_buffer x, ia, ib, ca, cb, out;
+    PyObject *team_obj = NULL;
+    Team *team;
     Py_ssize_t frames, channels, n_rows, out_frames, col;
-    if (!PyArg_ParseTuple(args, "y*nny*y*y*y*nw*nn", &x, &frames, &channels, &ia, &ib, &ca, &cb, &n_rows, &out,
-                          &out_frames, &col))
+    if (!PyArg_ParseTuple(args, "y*nny*y*y*y*nw*nn|O", &x, &frames, &channels, &ia, &ib, &ca, &cb, &n_rows, &out,
+                          &out_frames, &col, &team_obj))
         return NULL;
-    int ok = need(&x, frames * channels, 4, "x") && need(&ia, n_rows, 4, "ia") && need(&ib, n_rows, 4, "ib")
+    int ok = as_team(team_obj, &team) && need(&x, frames * channels, 4, "x") && need(&ia, n_rows, 4, "ia") && need(&ib, n_rows, 4, "ib")
              && need(&ca, n_rows, 4, "ca") && need(&cb, n_rows, 4, "cb") && need(&out, out_frames * n_rows, 4, "out");
     if (ok && (frames < 0 || col < 0 || col + frames > out_frames)) {
         PyErr_SetString(PyExc_ValueError, "rows: frames outside the history");
@@ -441,10 +788,17 @@ static PyObject *py_rows(PyObject *self, PyObject *args)
     float lo = 0.0f, hi = 0.0f;
     int finite = 1;
     if (ok) {
+        struct rows_job job = {(const float *)x.buf, frames, channels, n_rows, col, a, b, (const float *)ca.buf,
+                               (const float *)cb.buf, (float *)out.buf, {0}, {0}, {0}};
+        int parts = team == NULL ? 1 : team->parts;
         Py_BEGIN_ALLOW_THREADS
-        rows((const float *)x.buf, frames, channels, a, b, (const float *)ca.buf, (const float *)cb.buf, n_rows,
-             (float *)out.buf, col, &lo, &hi, &finite);
+        team_run(team, rows_part, &job);
         Py_END_ALLOW_THREADS
+        for (int p = 0; p < parts; p++) {
+            lo = job.lo[p] < lo ? job.lo[p] : lo;
+            hi = job.hi[p] > hi ? job.hi[p] : hi;
+            finite &= job.finite[p];
+        }
     }
     Py_buffer *const held[] = {&x, &ia, &ib, &ca, &cb, &out};
     release_all(held, 6);
@@ -453,13 +807,40 @@ static PyObject *py_rows(PyObject *self, PyObject *args)
     return Py_BuildValue("ddO", (double)lo, (double)hi, finite ? Py_True : Py_False);
 }
 
+struct rfft_job {
+    const float *x;
+    Py_ssize_t x_stride, n_cols, n;
+    const int *factors;
+    int n_factors;
+    const float *tw;
+    float *scratch, *out;
+};
+
+static void rfft_part(void *arg, int part, int parts)
+{
+    const struct rfft_job *j = arg;
+    Py_ssize_t c0, c1;
+    fl_share(j->n_cols, part, parts, &c0, &c1);
+    rfft_columns(j->x, j->x_stride, j->n_cols, j->n, j->factors, j->n_factors, j->tw,
+                 j->scratch + (Py_ssize_t)part * 4 * (j->n / 2) * FL, j->out, c0, c1);
+}
+
 static PyObject *py_rfft(PyObject *self, PyObject *args)
 {
     (void)self;
     Py_buffer x, factors, tw, scratch, out;
+    PyObject *team_obj = NULL;
+    Team *team;
     Py_ssize_t x_stride, n_cols, n;
-    if (!PyArg_ParseTuple(args, "y*nnny*y*w*w*", &x, &x_stride, &n_cols, &n, &factors, &tw, &scratch, &out))
+    if (!PyArg_ParseTuple(args, "y*nnny*y*w*w*|O", &x, &x_stride, &n_cols, &n, &factors, &tw, &scratch, &out,
+                          &team_obj))
         return NULL;
+    if (!as_team(team_obj, &team)) {
+        Py_buffer *const held[] = {&x, &factors, &tw, &scratch, &out};
+        release_all(held, 5);
+        return NULL;
+    }
+    int parts = team == NULL ? 1 : team->parts;
     Py_ssize_t M = n / 2, n_factors = factors.len / (Py_ssize_t)sizeof(int), twiddles = M + 1, product = 1;
     const int *fa = (const int *)factors.buf;
     int ok = 1;
@@ -476,11 +857,12 @@ static PyObject *py_rfft(PyObject *self, PyObject *args)
         ok = 0;
     }
     ok = ok && need(&x, (n - 1) * x_stride + n_cols, 4, "x") && need(&tw, twiddles, 8, "tw")
-         && need(&scratch, 4 * M * FL, 4, "scratch") && need(&out, (M + 1) * n_cols, 8, "out");
+         && need(&scratch, 4 * M * FL * parts, 4, "scratch") && need(&out, (M + 1) * n_cols, 8, "out");
     if (ok) {
+        struct rfft_job job = {(const float *)x.buf, x_stride, n_cols, n, fa, (int)n_factors, (const float *)tw.buf,
+                               (float *)scratch.buf, (float *)out.buf};
         Py_BEGIN_ALLOW_THREADS
-        rfft_columns((const float *)x.buf, x_stride, n_cols, n, fa, (int)n_factors, (const float *)tw.buf,
-                     (float *)scratch.buf, (float *)out.buf);
+        team_run(team, rfft_part, &job);
         Py_END_ALLOW_THREADS
     }
     Py_buffer *const held[] = {&x, &factors, &tw, &scratch, &out};
@@ -490,15 +872,67 @@ static PyObject *py_rfft(PyObject *self, PyObject *args)
     Py_RETURN_NONE;
 }
 
+struct quadform_job {
+    const float *y;
+    Py_ssize_t row_stride, n_rows, width, f_cols;
+    const float *f;
+    float *out;
+};
+
+static void quadform_part(void *arg, int part, int parts)
+{
+    const struct quadform_job *j = arg;
+    /* whole groups of QF_ROWS rows per part, so that no part re-reads another's rows */
+    Py_ssize_t groups = (j->n_rows + QF_ROWS - 1) / QF_ROWS;
+    Py_ssize_t q0 = QF_ROWS * part_start(groups, part, parts), q1 = QF_ROWS * part_start(groups, part + 1, parts);
+    quadform(j->y, j->row_stride, q0, q1 < j->n_rows ? q1 : j->n_rows, j->width, j->f, j->f_cols, j->out);
+}
+
+static PyObject *py_quadform(PyObject *self, PyObject *args)
+{
+    (void)self;
+    Py_buffer y, f, out;
+    PyObject *team_obj = NULL;
+    Team *team;
+    Py_ssize_t n_rows, row_stride, first, width, f_cols;
+    if (!PyArg_ParseTuple(args, "y*nnnny*nw*|O", &y, &n_rows, &row_stride, &first, &width, &f, &f_cols, &out,
+                          &team_obj))
+        return NULL;
+    int ok = as_team(team_obj, &team);
+    if (ok && !(n_rows >= 0 && width >= 0 && first >= 0 && first + width <= row_stride && f_cols >= 0
+                && f_cols % (2 * FL) == 0)) {
+        PyErr_SetString(PyExc_ValueError, "quadform: row range or factor columns do not fit");
+        ok = 0;
+    }
+    ok = ok && need(&y, n_rows * row_stride, 4, "y") && need(&f, width * f_cols, 4, "f")
+         && need(&out, n_rows, 4, "out");
+    if (ok) {
+        struct quadform_job job = {(const float *)y.buf + first, row_stride, n_rows, width, f_cols,
+                                   (const float *)f.buf, (float *)out.buf};
+        Py_BEGIN_ALLOW_THREADS
+        team_run(team, quadform_part, &job);
+        Py_END_ALLOW_THREADS
+    }
+    Py_buffer *const held[] = {&y, &f, &out};
+    release_all(held, 3);
+    if (!ok)
+        return NULL;
+    Py_RETURN_NONE;
+}
+
 static PyMethodDef methods[] = {
     {"steer", py_steer, METH_VARARGS,
      "steer(h_re, h_im, v, n_blocks, v_bins, k0, n_bins, n_rows, n_plain, n_beams, main_out, mirror_out, n_out, y, "
-     "lanes): per-bin steered sums, beams in groups of lanes (4 or 8)."},
+     "lanes[, team]): per-bin steered sums, beams in groups of lanes (4 or 8); the bins split across the team."},
+    {"quadform", py_quadform, METH_VARARGS,
+     "quadform(y, n_rows, row_stride, first, width, f, f_cols, out[, team]): out[q] = |y[q, first:first+width] @ f|^2 "
+     "for float rows of y; f (width, f_cols) with f_cols a multiple of 16; the rows split across the team."},
     {"rows", py_rows, METH_VARARGS,
-     "rows(x, frames, channels, ia, ib, ca, cb, n_rows, out, out_frames, col) -> (min, max, all finite): history rows "
-     "from input frames, and a scan of every input value."},
+     "rows(x, frames, channels, ia, ib, ca, cb, n_rows, out, out_frames, col[, team]) -> (min, max, all finite): "
+     "history rows from input frames, and a scan of every input value; the frames split across the team."},
     {"rfft", py_rfft, METH_VARARGS,
-     "rfft(x, x_stride, n_cols, n, factors, tw, scratch, out): real FFT down the columns of a frame."},
+     "rfft(x, x_stride, n_cols, n, factors, tw, scratch, out[, team]): real FFT down the columns of a frame; "
+     "column groups split across the team, each part with its own scratch (4 n/2 8 floats per thread)."},
     {NULL, NULL, 0, NULL},
 };
 
@@ -507,5 +941,16 @@ static struct PyModuleDef module = {PyModuleDef_HEAD_INIT, "_kernels", "Compiled
 
 PyMODINIT_FUNC PyInit__kernels(void)
 {
-    return PyModule_Create(&module);
+    if (PyType_Ready(&TeamType) < 0)
+        return NULL;
+    PyObject *m = PyModule_Create(&module);
+    if (m == NULL)
+        return NULL;
+    Py_INCREF(&TeamType);
+    if (PyModule_AddObject(m, "Team", (PyObject *)&TeamType) < 0) {
+        Py_DECREF(&TeamType);
+        Py_DECREF(m);
+        return NULL;
+    }
+    return m;
 }

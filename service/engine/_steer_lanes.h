@@ -108,13 +108,16 @@ static inline __attribute__((always_inline)) void S(bin_group)(
  * steering on the pair rows is the same but for the sign of the difference
  * rows), so one pass forms both.
  *
+ * Only bins [kb0, kb1) are formed (a team's share of the call; bins are
+ * independent and write separate outputs).
+ *
  * Loop order: a group's steering is read once, front to back, for up to
  * MAX_BLOCKS blocks; bins run inside groups so that the output lines being
  * written (one per beam and block) stay in the first-level cache. */
 CLONES static void S(steer)(const float *h_re, const float *h_im, const float *v, Py_ssize_t n_blocks,
                          Py_ssize_t v_bins, Py_ssize_t k0, Py_ssize_t n_bins, Py_ssize_t n_rows,
                          Py_ssize_t n_plain, Py_ssize_t n_beams, const int *main_out, const int *mirror_out,
-                         Py_ssize_t n_out, float *y)
+                         Py_ssize_t n_out, float *y, Py_ssize_t kb0, Py_ssize_t kb1)
 {
     Py_ssize_t block_stride = 2 * n_rows * v_bins;
     Py_ssize_t group_size = n_bins * n_rows * LANES;
@@ -124,7 +127,7 @@ CLONES static void S(steer)(const float *h_re, const float *h_im, const float *v
         float *yj = y + 2 * j0 * n_out * n_bins;
         for (Py_ssize_t b0 = 0; b0 < n_beams; b0 += LANES) {
             Py_ssize_t nb = n_beams - b0 < LANES ? n_beams - b0 : LANES;
-            for (Py_ssize_t k = 0; k < n_bins; k++) {
+            for (Py_ssize_t k = kb0; k < kb1; k++) {
                 const float *hr = h_re + (b0 / LANES) * group_size + k * n_rows * LANES;
                 const float *hi = h_im == NULL ? NULL : h_im + (b0 / LANES) * group_size + k * n_rows * LANES;
                 float *yk = yj + 2 * k;

@@ -26,6 +26,14 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.signal import firwin, kaiser_beta
 
+try:  # the compiled quadratic form (service/engine/_kernels.c); numpy's matrix product without it
+    from . import _kernels
+except ImportError:  # pragma: no cover - exercised by installs without a C compiler
+    _kernels = None
+
+#: Factor columns per pass of the compiled quadratic form (two vectors of eight).
+_FACTOR_COLUMNS = 16
+
 #: Stop-band attenuation the band filters are designed for, dB.
 STOPBAND_DB = 80.0
 #: Bins whose |G| is below this (relative) are left out of the evaluation.
@@ -168,6 +176,18 @@ class BandPowerEvaluator:
             factor = w.T @ vec[:, big] / np.sqrt(valid)
         self.factor = np.ascontiguousarray(factor, dtype=np.float32)
 
+    @property
+    def factor(self) -> np.ndarray:
+        """The factor ``L`` (2 bins, rank) float32: ``power = ||v L||^2``."""
+        return self._factor
+
+    @factor.setter
+    def factor(self, value: np.ndarray) -> None:
+        self._factor = value
+        # the compiled loop's copy, its columns padded with zeros to whole passes
+        pad = -value.shape[1] % _FACTOR_COLUMNS
+        self._factor_padded = np.ascontiguousarray(np.pad(value, ((0, 0), (0, pad))))
+
     def delayed(self, lag_samples: int) -> "BandPowerEvaluator":
         """The evaluator for spectra that lack a delay of ``lag_samples``.
 
@@ -184,7 +204,8 @@ class BandPowerEvaluator:
         factor[0::2] = c.real * f_re + c.imag * f_im
         factor[1::2] = -c.imag * f_re + c.real * f_im
         out = object.__new__(BandPowerEvaluator)
-        out.__dict__.update(self.__dict__, factor=np.ascontiguousarray(factor, dtype=np.float32))
+        out.__dict__.update(self.__dict__)
+        out.factor = np.ascontiguousarray(factor, dtype=np.float32)
         return out
 
     def mean_square(self, band_spectrum: np.ndarray) -> np.ndarray:
@@ -203,3 +224,31 @@ class BandPowerEvaluator:
         y = np.ascontiguousarray(band_spectrum, dtype=np.complex64)
         t = y.view(np.float32) @ self.factor
         return np.einsum("...r,...r->...", t, t)
+
+    def mean_square_in(self, spectra: np.ndarray, first_bin: int, compiled: bool, team=None) -> np.ndarray:
+        """:meth:`mean_square` of the band inside wider spectra, without copying the band out.
+
+        Parameters
+        ----------
+        spectra : ndarray, complex64, C order, shape (..., n)
+            Spectra whose element ``first_bin`` is bin ``self.bins[0]``.
+        first_bin : int
+        compiled : bool
+            Use the compiled quadratic form (when the kernels are installed);
+            it gives :meth:`mean_square`'s values to float32 rounding.
+        team : _kernels.Team or None
+            Threads that share the rows (compiled form only).
+
+        Returns
+        -------
+        ndarray of float32, shape (...)
+        """
+        n_bins = len(self.bins)
+        if not (compiled and _kernels is not None):
+            return self.mean_square(spectra[..., first_bin:first_bin + n_bins])
+        out = np.empty(spectra.shape[:-1], np.float32)
+        if spectra.dtype != np.complex64 or not spectra.flags.c_contiguous:
+            raise ValueError("spectra: expected a C-contiguous complex64 array")
+        _kernels.quadform(spectra, out.size, 2 * spectra.shape[-1], 2 * first_bin, 2 * n_bins,
+                          self._factor_padded, self._factor_padded.shape[1], out, team)
+        return out

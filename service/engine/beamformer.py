@@ -33,10 +33,12 @@ from .basis import _Basis
 from .geometry import ArrayGeometry
 from .products import COMPILED_AVAILABLE, KERNELS_MISSING, _BeamProduct, _kernels, need
 from .steerdata import _Steering
-from .transform import irfft_columns
+from .transform import cache_aligned, irfft_columns
 
 __all__ = ["COMPILED_AVAILABLE", "KERNELS_MISSING", "BeamSet", "Beamformer", "BlockResult", "EngineState", "sanitize"]
 
+#: Most threads one engine uses (the compiled team's limit).
+MAX_THREADS = 64
 #: Default audio crossfade after a retarget, seconds.
 CROSSFADE_S = 0.010
 
@@ -168,6 +170,17 @@ class Beamformer:
         (True), with numpy (False), or with the compiled loops when they are
         installed (None, the default). Both give the same output to float32
         rounding.
+    threads : int
+        Threads that work on each block, the calling thread included
+        (default 1; at most 64). The compiled loops split their work (the
+        bins of the steered sums, the column groups of the channel FFT, the
+        frames of the history write) across them; each thread writes its own
+        outputs, so the output is the same bit for bit. Without the compiled
+        kernels the engine uses one thread (:attr:`threads` says 1). Helper
+        threads spin for 0.3 ms after each call before they sleep, so that
+        the several calls of one block hand over quickly; they stop when the
+        engine is closed (:meth:`close`, or the engine as a context manager)
+        or dropped.
 
     Notes
     -----
@@ -175,7 +188,9 @@ class Beamformer:
     per-call temporaries of fixed size; steering data is built by
     :meth:`retarget` (call it off the processing thread via
     :meth:`prepare` and hand over with :meth:`apply` to keep the block
-    time flat).
+    time flat). More threads shorten the block time while the cores are
+    free (bench/engine_bench.py measures it); on a loaded machine they can
+    lengthen it, which is why the live service defaults to one.
 
     Examples
     --------
@@ -193,7 +208,7 @@ class Beamformer:
 
     def __init__(self, geometry: ArrayGeometry, sound_speed_mps: float, samplerate_hz: float,
                  block_frames: int, beams: BeamSet, power_batch_blocks: int = 1,
-                 crossfade_s: float = CROSSFADE_S, compiled: bool | None = None):
+                 crossfade_s: float = CROSSFADE_S, compiled: bool | None = None, threads: int = 1):
         if block_frames < 1:
             raise ValueError(f"block_frames={block_frames!r}: expected a positive whole number")
         if power_batch_blocks < 1:
@@ -206,6 +221,9 @@ class Beamformer:
         if compiled and not COMPILED_AVAILABLE:
             raise ValueError("compiled=True: the compiled kernels are not installed (reinstall beamtap with a C compiler)")
         self.compiled = COMPILED_AVAILABLE if compiled is None else bool(compiled)
+        if isinstance(threads, bool) or not isinstance(threads, (int, np.integer)) or not 1 <= threads <= MAX_THREADS:
+            raise ValueError(f"threads={threads!r}: expected a whole number from 1 to {MAX_THREADS}")
+        self._team = _kernels.Team(int(threads)) if self.compiled and threads > 1 else None
         self.crossfade_frames = max(1, int(round(crossfade_s * self.samplerate_hz)))
         self.bulk_delay_samples = steering.bulk_delay_samples(
             geometry.max_steering_delay_s(self.sound_speed_mps), self.samplerate_hz)
@@ -225,7 +243,8 @@ class Beamformer:
             self.samplerate_hz, self.block_frames, self.bulk_delay_samples)
         cost.check_memory(work_bytes, len(beams.power_deg), len(beams.audio_deg), self._basis.n_rows, n_fft)
         return _Steering(self.geometry, self._basis, self.sound_speed_mps, self.samplerate_hz,
-                         self.bulk_delay_samples, n_fft, self.block_frames, beams, self.compiled), n_fft
+                         self.bulk_delay_samples, n_fft, self.block_frames, beams, self.compiled,
+                         self._team), n_fft
 
     def apply(self, prepared) -> BlockResult:
         """Switch to prepared steering at the current block boundary.
@@ -286,7 +305,7 @@ class Beamformer:
         """
         n_fft = self._steer[1]
         # One history row per column: a frame is a contiguous (n_fft, rows) slice.
-        self._buf = np.zeros((self._history_frames(n_fft), self._basis.n_rows), np.float32)
+        self._buf = cache_aligned((self._history_frames(n_fft), self._basis.n_rows), np.float32, zero=True)
         self._pos = n_fft
         self._sample = int(first_sample)
         self._power_origin = int(first_sample)
@@ -311,12 +330,29 @@ class Beamformer:
         if self._pos >= n_keep and self._buf.shape[0] >= self._history_frames(n_keep):
             return
         keep = self._buf[: self._pos]
-        buf = np.zeros((max(self._history_frames(n_keep), self._buf.shape[0]), self._basis.n_rows), np.float32)
+        buf = cache_aligned((max(self._history_frames(n_keep), self._buf.shape[0]), self._basis.n_rows), np.float32,
+                            zero=True)
         take = min(len(keep), n_keep)
         buf[n_keep - take: n_keep] = keep[len(keep) - take:]
         self._buf, self._pos = buf, n_keep
 
+    def close(self) -> None:
+        """Stop the helper threads; the engine goes on working on the calling thread alone."""
+        if self._team is not None:
+            self._team.close()
+
+    def __enter__(self) -> "Beamformer":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
     # ---- properties ---------------------------------------------------
+    @property
+    def threads(self) -> int:
+        """Threads working on each block (1 after :meth:`close` or without the compiled kernels)."""
+        return 1 if self._team is None else self._team.threads
+
     @property
     def beams(self) -> BeamSet:
         return self._steer[0].beams
@@ -369,6 +405,8 @@ class Beamformer:
                              f">= {self.geometry.n_input_channels}) channels")
         # float32 without a copy when it already is; the scan for non-finite and clipped samples
         # happens where the block is written to the history (_push).
+        if self._team is not None:
+            self._team.wake()  # helpers asleep since the last block spin up while this one is written
         x = np.asarray(block, dtype=np.float32)
         nan_count = clip_count = 0
         steer, n_fft = self._steer
@@ -435,7 +473,7 @@ class Beamformer:
         need(chunk, np.float32, "chunk")
         ia, ib, ca, cb = self._basis.kernel_rows
         return _kernels.rows(chunk, len(chunk), chunk.shape[1], ia, ib, ca, cb, len(ia), self._buf, len(self._buf),
-                             self._pos)
+                             self._pos, self._team)
 
     def _audio(self, spec: np.ndarray, b: int, n_fft: int) -> np.ndarray:
         steer = self._steer[0]
@@ -467,7 +505,7 @@ class Beamformer:
         out = np.empty((len(starts), len(steer.bands), y.shape[1]), np.float32)
         for i, ev in enumerate(steer.bands):
             lo = int(ev.bins[0]) - steer.k1
-            ms = ev.mean_square(y[:, :, lo:lo + len(ev.bins)])
+            ms = ev.mean_square_in(y, lo, self.compiled, self._team)
             out[:, i, :] = 10.0 * np.log10(np.maximum(ms, 1e-30))
         return out, starts
 

@@ -55,12 +55,13 @@ class _BeamProduct:
     """
 
     def __init__(self, h: np.ndarray, basis: _Basis, symmetric: bool, bulk_delay: int, n_fft: int,
-                 bins: np.ndarray, compiled: bool):
+                 bins: np.ndarray, compiled: bool, team=None):
         n_bins, n_beams, n_sensors = h.shape
         self.n_beams, self.first_bin, self.n_bins = n_beams, int(bins[0]), n_bins
         self.real_form, self.lag = bool(symmetric), bulk_delay if symmetric else 0
         self.n_plain = basis.n_sums if symmetric else basis.n_rows
         self.compiled, self.elementwise = bool(compiled), False
+        self.team = team  # threads that share the compiled loop's bins (None: the caller's alone)
         q = _paired(h, basis.pairs, bulk_delay, n_fft, bins) if symmetric else basis.transform(h)
         if self.compiled:
             # Beams formed in the loop; a mirror image comes out of its partner's pass.
@@ -96,7 +97,7 @@ class _BeamProduct:
             y = np.empty((n_blocks, self.n_beams, self.n_bins), np.complex64)
             _kernels.steer(self.h[0], self.h[1] if len(self.h) > 1 else None, spec, n_blocks, width, k0,
                            self.n_bins, n_rows, self.n_plain, len(self.main_out), self.main_out, self.mirror_out,
-                           self.n_beams, y, self.lanes)
+                           self.n_beams, y, self.lanes, self.team)
             return y, self.lag
         band = spec[:, k0:k0 + self.n_bins]
         if self.elementwise:  # h: (bins, beams, rows)

@@ -22,9 +22,9 @@ class _Steering:
     """Precomputed steering data for one beam set (built off the hot path)."""
 
     def __init__(self, geometry, basis: _Basis, sound_speed_mps, samplerate_hz, bulk_delay, n_fft, valid,
-                 beams: BeamSet, compiled: bool):
+                 beams: BeamSet, compiled: bool, team=None):
         self.beams = beams
-        self.fft = ColumnFFT(n_fft, compiled)
+        self.fft = ColumnFFT(n_fft, compiled, team)
         pos = geometry.centred_positions_m
         gain = geometry.active_gain
         trims = geometry.active_trim_s
@@ -46,7 +46,7 @@ class _Steering:
             h = steering.steering_spectra(bulk_delay + tau, w, n_fft, bins)
             pairs = basis.pairs
             symmetric = pairs is not None and np.allclose(w[:, pairs[0]], w[:, pairs[1]], rtol=1e-9, atol=0.0)
-            return _BeamProduct(h, basis, symmetric, bulk_delay, n_fft, bins, compiled)
+            return _BeamProduct(h, basis, symmetric, bulk_delay, n_fft, bins, compiled, team)
 
         self.power = product(beams.power_deg, power_bins)
         # the real form leaves out a delay of `lag` samples; each band's factor puts it back
