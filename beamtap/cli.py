@@ -61,6 +61,19 @@ def _utc_arg(text: str) -> float:
     return t.timestamp()
 
 
+def _threads(text: str) -> int:
+    """``--threads N``: 1 to the engine's limit."""
+    from beamtap.service.engine.beamformer import MAX_THREADS  # noqa: PLC0415
+
+    try:
+        n = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r}: expected a whole number from 1 to {MAX_THREADS}") from None
+    if not 1 <= n <= MAX_THREADS:
+        raise argparse.ArgumentTypeError(f"{text!r}: expected a whole number from 1 to {MAX_THREADS}")
+    return n
+
+
 def _look(text: str):
     try:
         parts = [float(p) for p in text.split(",")]
@@ -117,7 +130,7 @@ def cmd_process(args):
     result = offline.process(None if config is None else load_config(config), inputs[0], args.out,
                              args.allow_mismatch, warn=lambda line: sys.stderr.write(f"beamtap process: warning: "
                                                                                      f"{line}\n"),
-                             start_utc=start_utc)
+                             start_utc=start_utc, threads=args.threads)
     print(f"wrote {args.out}/beams.csv, power.csv, audio.wav, summary.json: "
           f"{result['frames_processed']} frames, {result['power_rows']} power rows, "
           f"D = {result['bulk_delay_samples']} samples, "
@@ -143,7 +156,8 @@ def cmd_serve(args):
 
     serve.setup_logging(args.log_level)
     config = load_config(args.config)
-    return serve.run(config, args.config is None, args.publish, args.control, args.ready_file, args.seconds)
+    return serve.run(config, args.config is None, args.publish, args.control, args.ready_file, args.seconds,
+                     args.threads)
 
 
 def cmd_devices(args):
@@ -286,6 +300,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="beamform a session whose array, channels, medium or sample rate differ from --config")
     p.add_argument("--out", required=True, help="output folder for beams.csv, power.csv, audio.wav, summary.json")
     p.add_argument("--overwrite", action="store_true", help="replace outputs that already exist")
+    p.add_argument("--threads", type=_threads, default=None, metavar="N",
+                   help="engine threads (default: [engine] threads, else every core; the output is the same)")
 
     p = _add(sub, "pattern", cmd_pattern, "theoretical array response against azimuth for one look direction")
     p.add_argument("config", nargs="?", default=None, help="config file (default: the built-in demo)")
@@ -302,6 +318,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="write the bound endpoints as JSON here once serving")
     p.add_argument("--seconds", type=float, default=None, help="stop after this many seconds")
     p.add_argument("--log-level", default="INFO", choices=["DEBUG", "INFO", "WARNING", "ERROR"])
+    p.add_argument("--threads", type=_threads, default=None, metavar="N",
+                   help="engine threads (default: [engine] threads, else 1 for a steady block time)")
 
     _add(sub, "devices", cmd_devices, "list sound cards with their input channels and default sample rates")
 

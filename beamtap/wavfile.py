@@ -20,8 +20,10 @@ the ``ds64`` chunk, and the ``JUNK`` chunk reserved for it.
 from __future__ import annotations
 
 import errno
+import mmap
 import os
 import struct
+import sys
 
 import numpy as np
 
@@ -44,6 +46,11 @@ class WavReader:
     Parameters
     ----------
     path : str or path-like
+    mapped : bool
+        Float files: hand out read-only views of the file's pages (memory
+        mapped) instead of copies; the views stay valid after :meth:`close`.
+        A file that shrinks while it is read raises :class:`WavError` at the
+        next read (checked before the pages are touched).
 
     Attributes
     ----------
@@ -62,8 +69,10 @@ class WavReader:
     samples at the most negative or most positive code (clipped).
     """
 
-    def __init__(self, path):
+    def __init__(self, path, mapped: bool = False):
         self.path = str(path)
+        self._mapped = bool(mapped) and sys.byteorder == "little"
+        self._map = None
         try:
             self._f = open(self.path, "rb")
         except OSError as exc:
@@ -133,25 +142,64 @@ class WavReader:
         self._next = 0
 
     def read(self, frames: int):
-        """Up to ``frames`` frames: ``(block float32 (n, channels), clipped_count)``."""
+        """Up to ``frames`` frames: ``(block float32 (n, channels), clipped_count)``.
+
+        Float files are read straight into the returned array (no copy on
+        the way); integer files into one integer array, converted once.
+        ``clipped_count`` counts integer codes at either end of the range
+        (0 for float files: the engine counts those).
+        """
         n = max(0, min(frames, self.frames - self._next))
-        raw = self._f.read(n * self.channels * self._width)
-        n = len(raw) // (self.channels * self._width)
-        self._next += n
-        raw = raw[: n * self.channels * self._width]
+        if self.sample_format == "float32" and self._mapped and self._data_start % 4 == 0:
+            return self._view(n), 0
         if self.sample_format == "float32":
-            x = np.frombuffer(raw, "<f4").reshape(n, self.channels).astype(np.float32)
-            return x, 0
+            x = np.empty((n, self.channels), "<f4")
+            n = self._read_into(x)
+            return x[:n].astype(np.float32, copy=False), 0
         if self.sample_format == "int24":
-            b = np.frombuffer(raw, np.uint8).reshape(-1, 3)
-            v = (b[:, 0].astype(np.int32) | (b[:, 1].astype(np.int32) << 8) | (b[:, 2].astype(np.int32) << 16))
-            v = np.where(v >= 1 << 23, v - (1 << 24), v)
+            b = np.empty((n * self.channels, 4), np.uint8)
+            raw = np.empty((n, self.channels * 3), np.uint8)
+            n = self._read_into(raw)
+            # The three bytes as the top of a little-endian int32: an arithmetic shift extends the sign.
+            b[:, 0] = 0
+            b[:, 1:] = raw.reshape(-1, 3)
+            v = (b[: n * self.channels].view("<i4").ravel() >> 8)
             full = float(1 << 23)
         else:
-            v = np.frombuffer(raw, "<i2" if self._width == 2 else "<i4").astype(np.int64)
+            v = np.empty((n, self.channels), "<i2" if self._width == 2 else "<i4")
+            n = self._read_into(v)
+            v = v[:n].ravel()
             full = float(1 << (8 * self._width - 1))
-        clipped = int(np.count_nonzero((v >= full - 1) | (v <= -full)))
-        return (v / full).astype(np.float32).reshape(n, self.channels), clipped
+        clipped = int(np.count_nonzero(v >= full - 1)) + int(np.count_nonzero(v <= -full))
+        x = v.astype(np.float32)
+        x *= np.float32(1.0 / full)  # exact: a power of two
+        return x.reshape(n, self.channels), clipped
+
+    def _view(self, n: int) -> np.ndarray:
+        """The next ``n`` frames as a read-only view of the file's pages (``mapped=True``): no copy."""
+        start = self._data_start + self._next * self.channels * self._width
+        end = start + n * self.channels * self._width
+        if n and os.fstat(self._f.fileno()).st_size < end:
+            # Touching a mapped page past a file's end is a bus error, not an exception: check first.
+            raise WavError(f"{self.path}: the file shrank while being read (now "
+                           f"{os.fstat(self._f.fileno()).st_size} bytes, frame {self._next} ends at byte {end})")
+        if self._map is None and n:
+            self._map = mmap.mmap(self._f.fileno(), 0, access=mmap.ACCESS_READ)
+            if hasattr(self._map, "madvise") and hasattr(mmap, "MADV_SEQUENTIAL"):
+                self._map.madvise(mmap.MADV_SEQUENTIAL)
+        self._next += n
+        if not n:
+            return np.zeros((0, self.channels), np.float32)
+        return np.frombuffer(self._map, np.float32, n * self.channels, start).reshape(n, self.channels)
+
+    def _read_into(self, out: np.ndarray) -> int:
+        """Fill ``out`` (frames, ...) from the file; returns the whole frames read (fewer at the end)."""
+        got = self._f.readinto(memoryview(out).cast("B")) if out.size else 0
+        n = (got or 0) // (self.channels * self._width)
+        if n * self.channels * self._width != (got or 0):  # a partial frame at a cut-off end is not used
+            self._f.seek(n * self.channels * self._width - (got or 0), 1)
+        self._next += n
+        return n
 
     def seek(self, frame: int) -> None:
         """Continue reading at ``frame`` (0 .. frames)."""
@@ -160,6 +208,12 @@ class WavReader:
         self._next = frame
 
     def close(self):
+        if self._map is not None:
+            try:
+                self._map.close()
+            except BufferError:  # blocks handed out still look at it: it closes when they are gone
+                pass
+            self._map = None
         self._f.close()
 
     def __enter__(self):
@@ -279,10 +333,12 @@ class WavWriter:
         if sync:
             os.fsync(self._f.fileno())
 
-    def close(self) -> None:
+    def close(self, sync: bool = True) -> None:
+        """Final header, then close; ``sync`` (default) waits until the disk has it (a recording's
+        segment); a file that can be made again (an offline product) may skip the wait."""
         if not self._f.closed:
             try:
-                self.flush(sync=True)
+                self.flush(sync=sync)
             finally:
                 self._f.close()
 

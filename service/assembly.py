@@ -15,11 +15,13 @@ from .engine.scene import Scene
 from .engine.shading import shading_weights
 
 
-def make_beamformer(config: Config, beams=None) -> Beamformer:
-    """The engine as a config describes it (a set-up it cannot build is a usage error)."""
+def make_beamformer(config: Config, beams=None, threads: int = 1) -> Beamformer:
+    """The engine as a config describes it (a set-up it cannot build is a usage error); ``threads``
+    as :meth:`Config.engine_threads` chooses them."""
     try:
         return Beamformer(config.geometry, config.sound_speed_mps, config.input.samplerate_hz,
-                          config.input.block_frames, beams or config.beams, config.power_batch_blocks)
+                          config.input.block_frames, beams or config.beams, config.power_batch_blocks,
+                          threads=threads)
     except ValueError as exc:
         raise UsageError(f"{config.where}: [beams] {exc}") from None
 

@@ -24,7 +24,7 @@ from .tomlcheck import _REQUIRED, _Table
 
 from .engine import cost
 from .engine import directions as dirs
-from .engine.beamformer import BeamSet
+from .engine.beamformer import MAX_THREADS, BeamSet
 from .engine.geometry import ArrayGeometry
 from .engine.medium import air_sound_speed_mps, mackenzie_out_of_range, mackenzie_sound_speed_mps
 from .engine.shading import SHADINGS
@@ -111,6 +111,14 @@ class SecurityConfig:
 
 
 @dataclass(frozen=True)
+class EngineConfig:
+    """``[engine]``: how the engine runs (not what it computes)."""
+    # Threads per block, the caller's included; None: 1 live (a predictable block time), every
+    # core offline (see :func:`engine_threads`).
+    threads: int | None = None
+
+
+@dataclass(frozen=True)
 class Config:
     """A validated beamtap config."""
 
@@ -125,6 +133,16 @@ class Config:
     control: ControlConfig = field(default_factory=ControlConfig)
     record: RecordConfig = field(default_factory=RecordConfig)
     security: SecurityConfig = field(default_factory=SecurityConfig)
+    engine: EngineConfig = field(default_factory=EngineConfig)
+
+    def engine_threads(self, offline: bool, override: int | None = None) -> int:
+        """Threads for the engine: ``override`` (``--threads``), else ``[engine] threads``, else 1
+        live and every core this process may use offline (at most the engine's limit)."""
+        if override is not None:
+            return override
+        if self.engine.threads is not None:
+            return self.engine.threads
+        return min(available_cores(), MAX_THREADS) if offline else 1
 
     @property
     def sound_speed_mps(self) -> float:
@@ -232,8 +250,23 @@ def loads(text: str, where: str = "<config>") -> Config:
     control = _control(top.table("control", {}))
     record = _record(top.table("record", {}))
     security = _security(top.table("security", {}))
+    engine = _engine(top.table("engine", {}))
     top.done()
-    return Config(where, text, geometry, medium, inp, beams, batch, publish, control, record, security)
+    return Config(where, text, geometry, medium, inp, beams, batch, publish, control, record, security, engine)
+
+
+def _engine(t: _Table) -> EngineConfig:
+    threads = t.integer("threads", None, low=1, high=MAX_THREADS)
+    t.done()
+    return EngineConfig(threads)
+
+
+def available_cores() -> int:
+    """Cores this process may run on (its CPU affinity where the platform reports it)."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except (AttributeError, OSError):  # pragma: no cover - platforms without affinity
+        return max(1, os.cpu_count() or 1)
 
 
 def _array(t: _Table) -> ArrayGeometry:

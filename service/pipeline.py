@@ -44,7 +44,7 @@ class Pipeline:
         inp = config.input
         self.block_frames = inp.block_frames
         self.samplerate_hz = inp.samplerate_hz
-        self.engine = make_beamformer(config)
+        self.engine = make_beamformer(config, threads=config.engine_threads(offline=False))
         self.bulk_delay = self.engine.bulk_delay_samples
         geo = config.geometry
         self._gain_cols = geo.active_channel_index

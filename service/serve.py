@@ -130,8 +130,10 @@ class Service:
 
 
 def run(config: Config, builtin: bool, publish: str | None = None, control: str | None = None,
-        ready_file: str | None = None, seconds: float | None = None) -> int:
+        ready_file: str | None = None, seconds: float | None = None, threads: int | None = None) -> int:
     """Run the service until SIGINT/SIGTERM (or ``seconds``); returns the exit status."""
+    if threads is not None:
+        config = replace(config, engine=replace(config.engine, threads=threads))
     if publish:
         config = replace(config, publish=replace(config.publish, endpoint=publish))
     if control:

@@ -77,3 +77,30 @@ def test_truncated_wav_is_read_to_its_end_and_processed_with_a_warning(tmp_path,
                         str(tmp_path / "o")], capture_output=True, text=True, timeout=120)
     assert r.returncode == 0, r.stderr
     assert "the header promises 48000 frames, the file holds 10000" in r.stderr
+
+
+@pytest.mark.parametrize("subtype, full", [("PCM_16", 2**15), ("PCM_24", 2**23), ("PCM_32", 2**31), ("FLOAT", None)])
+def test_every_sample_format_reads_as_libsndfile_does(tmp_path, rng, subtype, full):
+    """Integer codes c read as c / 2^(bits-1) (common practice; libsndfile's float reading of PCM,
+    through soundfile, is the reference); codes at either end of the range are counted as clipped;
+    block by block reads join up to the whole file, and a cut-off last frame is not read."""
+    path = tmp_path / f"{subtype}.wav"
+    x = np.clip(0.3 * rng.standard_normal((1000, 5)), -1.0, 1.0).astype(np.float32)
+    x[10, 2], x[11, 4] = 1.0, -1.0  # the top and bottom codes
+    sf.write(path, x, 8000, subtype=subtype)
+    theirs, _ = sf.read(path, dtype="float64")
+    with open(path, "ab") as f:  # a partial frame left by a crash mid-write
+        f.write(b"\x01\x02")
+    with WavReader(path) as r:
+        parts = [r.read(333) for _ in range(4)]
+        assert r.read(10)[0].shape == (0, 5)
+    mine = np.concatenate([p[0] for p in parts])
+    assert mine.dtype == np.float32 and mine.shape == (1000, 5)
+    np.testing.assert_array_equal(mine, theirs.astype(np.float32))
+    clipped = sum(p[1] for p in parts)
+    if full is None:
+        assert clipped == 0
+    else:
+        codes = np.round(theirs * full)
+        assert clipped == int(np.count_nonzero(codes >= full - 1) + np.count_nonzero(codes <= -full))
+        assert clipped >= 2

@@ -410,39 +410,39 @@ CLONES static void quadform(const float *y, Py_ssize_t row_stride, Py_ssize_t q0
 
 /* ---- A team of threads for one call ---------------------------------------
  *
- * A kernel call can be split into parts that run at once: the caller runs
- * part 0 and the team's helper threads the others, with the GIL released
- * throughout. Each part writes its own outputs (bins of the steered sums,
- * column groups of the FFT, frames of the history), so the result is the
- * same bit for bit whatever the number of parts. Helpers wait for the next
- * call by spinning for a short while, so that the several calls of one block
- * hand over in well under a microsecond: a thread put to sleep and woken
- * through the kernel costs tens of microseconds on a virtual machine (about
- * 50 µs measured here, 2026-12-05, for a ping-pong between two Python
- * threads), a tenth of a 64-sensor block. After SPIN_NS without work they
- * sleep on a condition variable; team_wake lets the caller rouse them ahead
- * of a block. */
+ * A kernel call can be split into parts that run at once, with the GIL
+ * released throughout. Each part writes its own outputs (bins of the steered
+ * sums, column groups of the FFT, frames of the history, rows of the band
+ * power), so the result is the same bit for bit whatever thread runs which
+ * part. The parts of a call are claimed from one counter: the caller and any
+ * helper that is awake take the next unclaimed part until none is left, so a
+ * helper that is asleep or descheduled delays nothing (the caller does its
+ * parts). Helpers wait for the next call by spinning for a short while, so that
+ * the several calls of one block hand over in well under a microsecond: a
+ * thread put to sleep and woken through the kernel costs tens of microseconds
+ * on a virtual machine (about 50 µs measured here, 2026-12-05, for a
+ * ping-pong between two Python threads), a tenth of a 64-sensor block. After
+ * SPIN_NS without work they sleep on a condition variable; team_wake rouses
+ * them ahead of a block. */
 #define TEAM_MAX 64
 #define SPIN_NS 300000LL
+#define PART_BITS 16 /* the ticket: call number above, next unclaimed part below */
+#define PART_MASK ((1ULL << PART_BITS) - 1)
 
 typedef void (*part_fn)(void *job, int part, int parts);
 
 typedef struct Team Team;
-struct helper {
-    Team *team;
-    int part;
-};
 struct Team {
     PyObject_HEAD
     int parts, started;
     long pid; /* a forked child has no helpers: it runs every part itself */
     pthread_t threads[TEAM_MAX];
-    struct helper helpers[TEAM_MAX];
     pthread_mutex_t lock, call_lock;
     pthread_cond_t wake;
-    atomic_ulong round; /* one per call: a helper runs each round exactly once */
+    atomic_ullong ticket; /* (call << PART_BITS) | next part to claim */
+    atomic_int done;      /* parts of the current call finished */
+    unsigned long long call;
     unsigned long alert; /* bumped by team_wake (under lock): sleepers wake and spin again */
-    atomic_int busy;
     int stop;
     part_fn fn;
     void *job;
@@ -464,51 +464,51 @@ static long long now_ns(void)
     return ts.tv_sec * 1000000000LL + ts.tv_nsec;
 }
 
+/* Claim and run parts of the current call until none is left. A successful claim pins the call:
+ * it cannot finish (nor fn and job change) before the claimed part is done. */
+static void team_work(Team *t)
+{
+    unsigned long long s = atomic_load_explicit(&t->ticket, memory_order_acquire);
+    while ((s & PART_MASK) < (unsigned long long)t->parts) {
+        if (atomic_compare_exchange_weak_explicit(&t->ticket, &s, s + 1, memory_order_acq_rel,
+                                                  memory_order_acquire)) {
+            t->fn(t->job, (int)(s & PART_MASK), t->parts);
+            atomic_fetch_add_explicit(&t->done, 1, memory_order_release);
+            s = atomic_load_explicit(&t->ticket, memory_order_acquire);
+        }
+    }
+}
+
 static void *helper_main(void *arg)
 {
-    struct helper *h = arg;
-    Team *t = h->team;
-    unsigned long seen = 0;
+    Team *t = arg;
+    unsigned long long seen = 0;
     for (;;) {
-        unsigned long r = atomic_load_explicit(&t->round, memory_order_acquire);
-        if (r == seen) {
+        unsigned long long s = atomic_load_explicit(&t->ticket, memory_order_acquire);
+        if (s == seen) {
             long long deadline = now_ns() + SPIN_NS;
-            for (int n = 1; (r = atomic_load_explicit(&t->round, memory_order_acquire)) == seen; n++) {
+            for (int n = 1; (s = atomic_load_explicit(&t->ticket, memory_order_acquire)) == seen; n++) {
                 relax();
                 if ((n & 255) == 0 && now_ns() > deadline) {
                     pthread_mutex_lock(&t->lock);
                     unsigned long alert = t->alert;
-                    while ((r = atomic_load_explicit(&t->round, memory_order_acquire)) == seen && t->alert == alert)
+                    while ((s = atomic_load_explicit(&t->ticket, memory_order_acquire)) == seen && t->alert == alert
+                           && !t->stop)
                         pthread_cond_wait(&t->wake, &t->lock);
                     pthread_mutex_unlock(&t->lock);
                     deadline = now_ns() + SPIN_NS; /* woken by work or an alert: spin again */
                 }
             }
         }
-        seen = r;
-        if (t->stop)
+        pthread_mutex_lock(&t->lock);
+        int stop = t->stop;
+        pthread_mutex_unlock(&t->lock);
+        if (stop)
             return NULL;
-        if (t->fn != NULL)
-            t->fn(t->job, h->part, t->parts);
-        atomic_fetch_sub_explicit(&t->busy, 1, memory_order_release);
+        team_work(t);
+        /* wait for the next call: a ticket other than this call's exhausted one */
+        seen = (s & ~PART_MASK) | (unsigned long long)t->parts;
     }
-}
-
-/* Publish a round (work, a wake-up or the stop) to the helpers. */
-static void team_signal(Team *t, part_fn fn, void *job)
-{
-    t->fn = fn, t->job = job;
-    atomic_store_explicit(&t->busy, t->started, memory_order_relaxed);
-    pthread_mutex_lock(&t->lock);
-    atomic_fetch_add_explicit(&t->round, 1, memory_order_release);
-    pthread_cond_broadcast(&t->wake);
-    pthread_mutex_unlock(&t->lock);
-}
-
-static void team_wait(Team *t)
-{
-    while (atomic_load_explicit(&t->busy, memory_order_acquire) > 0)
-        relax();
 }
 
 /* fn(job, part, parts) for every part; called without the GIL. */
@@ -520,10 +520,17 @@ static void team_run(Team *t, part_fn fn, void *job)
             fn(job, p, parts);
         return;
     }
-    pthread_mutex_lock(&t->call_lock); /* one call at a time: two engines may share nothing else */
-    team_signal(t, fn, job);
-    fn(job, 0, t->parts);
-    team_wait(t);
+    pthread_mutex_lock(&t->call_lock); /* one call at a time */
+    t->fn = fn, t->job = job;
+    atomic_store_explicit(&t->done, 0, memory_order_relaxed);
+    t->call++;
+    pthread_mutex_lock(&t->lock);
+    atomic_store_explicit(&t->ticket, t->call << PART_BITS, memory_order_release);
+    pthread_cond_broadcast(&t->wake);
+    pthread_mutex_unlock(&t->lock);
+    team_work(t);
+    while (atomic_load_explicit(&t->done, memory_order_acquire) < t->parts)
+        relax();
     pthread_mutex_unlock(&t->call_lock);
 }
 
@@ -544,11 +551,11 @@ static PyObject *team_new(PyTypeObject *type, PyObject *args, PyObject *kwds)
     pthread_mutex_init(&t->lock, NULL);
     pthread_mutex_init(&t->call_lock, NULL);
     pthread_cond_init(&t->wake, NULL);
-    atomic_init(&t->round, 0);
-    atomic_init(&t->busy, 0);
+    /* no call yet: nothing to claim */
+    atomic_init(&t->ticket, (unsigned long long)t->parts);
+    atomic_init(&t->done, 0);
     for (int i = 1; i < t->parts; i++) {
-        t->helpers[i] = (struct helper){t, i};
-        if (pthread_create(&t->threads[i], NULL, helper_main, &t->helpers[i]) != 0)
+        if (pthread_create(&t->threads[i], NULL, helper_main, t) != 0)
             break;
         t->started++;
     }
@@ -565,8 +572,13 @@ static void team_stop(Team *t)
 {
     if (t->pid == (long)getpid() && t->started) {
         pthread_mutex_lock(&t->call_lock);
+        pthread_mutex_lock(&t->lock);
         t->stop = 1;
-        team_signal(t, NULL, NULL);
+        t->call++;
+        atomic_store_explicit(&t->ticket, (t->call << PART_BITS) | (unsigned long long)t->parts,
+                              memory_order_release);
+        pthread_cond_broadcast(&t->wake);
+        pthread_mutex_unlock(&t->lock);
         for (int i = 1; i <= t->started; i++)
             pthread_join(t->threads[i], NULL);
         t->started = 0;

@@ -3,6 +3,10 @@
 from __future__ import annotations
 
 import json
+import queue
+import threading
+from collections import deque
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -13,9 +17,9 @@ from beamtap.session import json_default
 from beamtap.wavfile import WavReader, WavWriter
 
 from ..assembly import make_beamformer, summary
-from ..config import Config, loads
+from ..config import Config, available_cores, loads
 from ..engine.beamformer import KERNELS_MISSING
-from .simulate import progress
+from .progress import Progress
 
 
 #: The files ``process`` writes into its output folder.
@@ -57,7 +61,7 @@ def config_differences(stored: Config, given: Config) -> list:
 
 
 def process(config: Config | None, input_path, out_dir, allow_mismatch: bool = False, warn=None,
-            start_utc: float | None = None) -> dict:
+            start_utc: float | None = None, threads: int | None = None) -> dict:
     """Beamform a WAV file or a recorded session folder (the ``process`` command).
 
     ``config`` None takes a session's own stored config (a WAV needs one).
@@ -66,7 +70,8 @@ def process(config: Config | None, input_path, out_dir, allow_mismatch: bool = F
     callable taking one line) hears about segments shorter than the
     manifest says. Outputs are created only once the inputs are checked.
     ``start_utc`` (POSIX seconds) dates a WAV's first sample; a session's
-    rows are dated from its segments.
+    rows are dated from its segments. ``threads`` (``--threads``) overrides
+    the config's engine threads (default offline: every core).
     Returns the summary it writes to ``summary.json``.
     """
     out = Path(out_dir)
@@ -86,10 +91,10 @@ def process(config: Config | None, input_path, out_dir, allow_mismatch: bool = F
                 warn(f"{input_path}: {d} (processing anyway, --allow-mismatch)")
         runs, anchors = _session_runs(config, Path(input_path), warn)
         _make_folder(out)
-        return _process_runs(config, runs, out, str(input_path), "session", anchors)
+        return _process_runs(config, runs, out, str(input_path), "session", anchors, threads)
     if config is None:
         raise UsageError(f"{input_path}: a WAV file needs --config FILE (only a session holds its own config)")
-    with WavReader(input_path) as reader:
+    with WavReader(input_path, mapped=True) as reader:
         _check_input(config, input_path, reader.samplerate_hz, reader.channels)
         total = reader.frames
         if reader.truncated:
@@ -99,14 +104,14 @@ def process(config: Config | None, input_path, out_dir, allow_mismatch: bool = F
 
         def blocks():
             while True:
-                x, clipped = reader.read(config.input.block_frames)
+                x, clipped = reader.read(_read_frames(config))
                 if len(x) == 0:
                     return
                 yield x, clipped
 
         runs = [(0, total, reader.channels, reader.sample_format, blocks())]
         anchors = [] if start_utc is None else [(0, float(start_utc))]
-        return _process_runs(config, runs, out, reader.path, reader.sample_format, anchors)
+        return _process_runs(config, runs, out, reader.path, reader.sample_format, anchors, threads)
 
 
 def _utc_mapper(anchors, fs: float):
@@ -169,11 +174,11 @@ def _session_runs(config: Config, folder: Path, warn):
             current = []
         current.append(seg)
     runs.append(current)
-    block = config.input.block_frames
+    block = _read_frames(config)
 
     def blocks(run):
         for seg in run:
-            with WavReader(folder / seg["file"]) as r:
+            with WavReader(folder / seg["file"], mapped=True) as r:
                 left = seg["frames"]
                 while left > 0:
                     x, clipped = r.read(min(block, left))
@@ -187,8 +192,95 @@ def _session_runs(config: Config, folder: Path, warn):
              run[0].get("sample_format") or "float32", blocks(run)) for run in runs], anchors
 
 
-def _process_runs(config: Config, runs, out: Path, source: str, input_format: str, anchors=()) -> dict:
-    bf = make_beamformer(config)
+def _read_frames(config: Config) -> int:
+    """Frames per file read: eight engine blocks. The engine takes any number of frames per call
+    with the same output, and fewer, larger calls cost less Python around the compiled loops."""
+    return 8 * config.input.block_frames
+
+
+def _read_ahead(items, depth: int = 4):
+    """``items`` (an iterator of input blocks) advanced on a reader thread, up to ``depth`` ahead.
+
+    File reads release the GIL, so the next blocks arrive while the engine
+    works on this one. Leaving the loop early (an error, Ctrl-C) stops the
+    reader; an error while reading is raised here, in order.
+    """
+    box: queue.Queue = queue.Queue(maxsize=depth)
+    stop = threading.Event()
+    end = object()
+
+    def put(entry) -> bool:
+        while not stop.is_set():
+            try:
+                box.put(entry, timeout=0.1)
+                return True
+            except queue.Full:
+                continue
+        return False
+
+    def read():
+        try:
+            for item in items:
+                if not put((True, item)):
+                    return
+            put((True, end))
+        except BaseException as exc:  # noqa: BLE001 - handed to the consumer, raised there
+            put((False, exc))
+
+    reader = threading.Thread(target=read, name="beamtap-process-reader", daemon=True)
+    reader.start()
+    try:
+        while True:
+            ok, item = box.get()
+            if not ok:
+                raise item
+            if item is end:
+                return
+            yield item
+    finally:
+        stop.set()
+        reader.join()
+
+
+class _Writer:
+    """File writes on one background thread, in the order given, while the engine works on.
+
+    At most ``depth`` writes wait (the engine slows to the disk's pace
+    rather than filling memory); a write's failure (a full disk) is raised
+    in the caller at its next :meth:`submit` or at :meth:`drain`.
+    """
+
+    def __init__(self, depth: int = 16):
+        self._pool = ThreadPoolExecutor(1, thread_name_prefix="beamtap-process-writer")
+        self._pending: deque = deque()
+        self._depth = depth
+
+    def submit(self, fn, *args) -> None:
+        self._pending.append(self._pool.submit(fn, *args))
+        while self._pending and (self._pending[0].done() or len(self._pending) > self._depth):
+            self._pending.popleft().result()
+
+    def drain(self) -> None:
+        while self._pending:
+            self._pending.popleft().result()
+
+    def __enter__(self) -> "_Writer":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        try:
+            if exc[0] is None:
+                self.drain()
+        finally:
+            for f in self._pending:
+                f.cancel()
+            self._pool.shutdown(wait=True)
+
+
+def _process_runs(config: Config, runs, out: Path, source: str, input_format: str, anchors=(),
+                  threads: int | None = None) -> dict:
+    bf = make_beamformer(config, threads=config.engine_threads(offline=True, override=threads))
+    threads_used = bf.threads
     fs = config.input.samplerate_hz
     d = bf.bulk_delay_samples
     block = config.input.block_frames
@@ -202,8 +294,24 @@ def _process_runs(config: Config, runs, out: Path, source: str, input_format: st
     audio_w = WavWriter(out / "audio.wav", fs, n_audio) if n_audio else None
     origin = runs[0][0] if runs else 0
     total = sum(r[1] for r in runs)
+    batch_blocks = max(2, int(fs / 2 / block))  # about half a second of outputs per write
+    bar = Progress(total, fs)
+    batch_audio, batch_firsts, batch_power = [], [], []
+
+    def write_batch(audio, firsts, power_db):
+        if audio:
+            audio_w.write(np.concatenate(audio))
+        if firsts:
+            firsts = np.concatenate(firsts)
+            pf.write(powertable.rows_text(firsts, [utc_of(n) for n in firsts], np.concatenate(power_db)))
+
+    def hand_over():
+        """The collected outputs to the writer thread: one hand-over per half second of audio."""
+        writer.submit(write_batch, batch_audio[:], batch_firsts[:], batch_power[:])
+        batch_audio.clear(), batch_firsts.clear(), batch_power.clear()
+
     try:
-        with open(power_csv, "w", encoding="utf-8") as pf:
+        with open(power_csv, "w", encoding="utf-8") as pf, _Writer() as writer, bf:
             pf.write(powertable.header(len(beams.bands_hz), len(beams.power_deg)) + "\n")
             end_prev = None
             for first, frames, channels, fmt, blocks in runs:
@@ -212,38 +320,47 @@ def _process_runs(config: Config, runs, out: Path, source: str, input_format: st
                     counts["gaps"] += 1
                     counts["gap_frames"] += gap
                     if audio_w is not None:
-                        audio_w.skip(gap)  # silence, sparse on disk
+                        hand_over()
+                        writer.submit(audio_w.skip, gap)  # silence, sparse on disk
                 bf.reset(first)
                 run_end = first + frames
                 skip = d  # the first D output frames precede the run's first input frame
 
                 def emit(result):
                     nonlocal skip
-                    if audio_w is not None and len(result.audio):
-                        audio_w.write(result.audio[skip:])
-                        skip = max(0, skip - len(result.audio))
+                    if audio_w is not None and len(result.audio) > skip:
+                        batch_audio.append(result.audio[skip:])
+                    skip = max(0, skip - len(result.audio))
                     # rows computed from input only (not from the zero tail that flushes the audio)
-                    keep = result.power_first_sample + bf.power_delay_samples + block <= run_end
-                    firsts = result.power_first_sample[keep]
+                    firsts = result.power_first_sample
                     if len(firsts):
-                        pf.write(powertable.rows_text(firsts, [utc_of(n) for n in firsts], result.power_db[keep]))
-                        counts["power_rows"] += len(firsts)
+                        keep = firsts + (bf.power_delay_samples + block) <= run_end
+                        if keep.all():
+                            batch_firsts.append(firsts)
+                            batch_power.append(result.power_db)
+                        elif keep.any():
+                            batch_firsts.append(firsts[keep])
+                            batch_power.append(result.power_db[keep])
+                        counts["power_rows"] += int(keep.sum())
                     counts["nan"] += result.nan_count
                     if fmt == "float32":
                         counts["clipped"] += result.clip_count
+                    if len(batch_audio) + len(batch_firsts) >= batch_blocks:
+                        hand_over()
 
-                for x, clipped in blocks:
+                for x, clipped in (_read_ahead(blocks) if bf.threads < available_cores() else blocks):
                     counts["clipped"] += clipped  # integer input: full-scale codes
                     counts["frames"] += len(x)
                     emit(bf.process(x))
-                    progress(counts["frames"], total, fs)
+                    bar.update(counts["frames"])
                 # Push the last D frames of beam audio out so audio.wav has the input's length.
                 emit(bf.process(np.zeros((d, channels), np.float32)))
                 emit(bf.flush())
+                hand_over()
                 end_prev = run_end
     finally:
         if audio_w is not None:
-            audio_w.close()
+            audio_w.close(sync=False)  # made again by rerunning: no wait for the disk
     result = {
         "software": f"beamtap {__version__}",
         "input": source,
@@ -265,6 +382,7 @@ def _process_runs(config: Config, runs, out: Path, source: str, input_format: st
         "power_rows": counts["power_rows"],
         "nan_samples": counts["nan"],
         "clipped_samples": counts["clipped"],
+        "engine_threads": threads_used,
         "summary": summary(config, bf),
     }
     (out / "summary.json").write_text(json.dumps(result, indent=2, default=json_default))

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import shutil
-import sys
 from pathlib import Path
 
 from beamtap.errors import UsageError
@@ -11,6 +10,7 @@ from beamtap.wavfile import WavWriter
 
 from ..assembly import make_scene
 from ..config import Config
+from .progress import Progress
 
 
 def simulate(config: Config, seconds: float, out_path) -> int:
@@ -33,6 +33,7 @@ def simulate(config: Config, seconds: float, out_path) -> int:
         raise UsageError(f"{out_path}: the simulation needs {size / 2**20:.0f} MB, {folder} has "
                          f"{free / 2**20:.0f} MB free")
     scene = make_scene(config)
+    bar = Progress(total, fs)
     try:
         with WavWriter(out_path, fs, channels) as w:
             done = 0
@@ -40,18 +41,10 @@ def simulate(config: Config, seconds: float, out_path) -> int:
                 n = min(block, total - done)
                 w.write(scene.render(n))
                 done += n
-                progress(done, total, fs)
+                bar.update(done)
     except BaseException:
         Path(out_path).unlink(missing_ok=True)  # no partial file left behind (error or Ctrl-C)
         raise
     return total
 
 
-def progress(done: int, total: int, fs: float):
-    if total / fs > 5.0 and sys.stderr.isatty():
-        width = 40
-        filled = int(width * done / total)
-        sys.stderr.write(f"\r[{'#' * filled}{'.' * (width - filled)}] {done / fs:7.1f} / {total / fs:.1f} s")
-        if done >= total:
-            sys.stderr.write("\n")
-        sys.stderr.flush()
