@@ -131,8 +131,9 @@ def cmd_process(args):
                              args.allow_mismatch, warn=lambda line: sys.stderr.write(f"beamtap process: warning: "
                                                                                      f"{line}\n"),
                              start_utc=start_utc, threads=args.threads)
-    print(f"wrote {args.out}/beams.csv, power.csv, audio.wav, summary.json: "
-          f"{result['frames_processed']} frames, {result['power_rows']} power rows, "
+    confirmed = sum(1 for t in result["tracks"] if t["confirmed"])
+    print(f"wrote {args.out}/beams.csv, power.csv, audio.wav, detections.csv, tracks.csv, summary.json: "
+          f"{result['frames_processed']} frames, {result['power_rows']} power rows, {confirmed} confirmed tracks, "
           f"D = {result['bulk_delay_samples']} samples, "
           f"{result['nan_samples']} non-finite and {result['clipped_samples']} clipped samples")
 
@@ -226,9 +227,9 @@ def cmd_picture(args):
         data = picture.from_live(args.endpoint, args.seconds, args.band)
     else:
         data = picture.from_csv(args.power_csv, args.band)
-    times, bearings, power, title, utc, marks = data
-    picture.render(times, bearings, power, title, args.out, args.range_db, utc=utc, marks=marks)
-    print(f"wrote {args.out}: {len(data[2])} rows x {len(data[1])} bearings")
+    times, bearings, power, title, utc, marks, tracks = data
+    picture.render(times, bearings, power, title, args.out, args.range_db, utc=utc, marks=marks, tracks=tracks)
+    print(f"wrote {args.out}: {len(data[2])} rows x {len(data[1])} bearings, {len(tracks)} tracks")
 
 
 def cmd_record(args):
@@ -327,8 +328,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = _add(sub, "tail", cmd_tail, "print one line per stream message (topic, seq, first_sample, UTC, shape, gap)")
     p.add_argument("--endpoint", default=DEFAULT_PUBLISH, help=f"service stream (default {DEFAULT_PUBLISH})")
-    p.add_argument("--topics", nargs="+", default=["power", "audio", "raw", "status", "beams"],
-                   choices=["power", "audio", "raw", "status", "beams"])
+    p.add_argument("--topics", nargs="+", default=["power", "audio", "raw", "status", "beams", "detections", "tracks"],
+                   choices=["power", "audio", "raw", "status", "beams", "detections", "tracks"])
     p.add_argument("--count", type=int, default=None, help="stop after this many messages")
     p.add_argument("--timeout", type=float, default=10.0, help="seconds to wait for a message (default 10)")
 

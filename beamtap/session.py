@@ -45,11 +45,13 @@ from pathlib import Path
 
 import numpy as np
 
-from beamtap import __version__, powertable
+from beamtap import __version__, powertable, tracktable
 from beamtap.wavfile import WavReader, WavWriter
 
 MANIFEST = "manifest.jsonl"
 KINDS = ("raw", "audio", "power")
+#: Tables recorded beside power when detection is on (see beamtap.tracktable).
+TABLES = ("detections", "tracks")
 FORMAT_VERSION = 1
 #: Keep every WAV segment well below the 4 GiB RIFF limit.
 MAX_SEGMENT_BYTES = 2**31
@@ -131,6 +133,7 @@ class SessionWriter:
         self.power_block_frames = int(power_block_frames)
         self._manifest = WholeRecordFile(self.folder / MANIFEST)
         self._open: dict = {}  # kind -> dict(writer, record, next_sample, ...)
+        self._tables: dict = {}  # detections / tracks -> dict(file, name, rows)
         self._counter = {k: 0 for k in KINDS}
         self._last_flush = self._last_header = time.monotonic()
         self.beam_table_id = None
@@ -176,6 +179,9 @@ class SessionWriter:
         """
         if kind == "power":
             self._write_power(first_sample, data, utc_first)
+            return
+        if kind in TABLES:
+            self._write_table(kind, first_sample, data, utc_first)
             return
         data = np.asarray(data, np.float32)
         pos = 0
@@ -243,6 +249,29 @@ class SessionWriter:
             self._close("power")
         self._maybe_flush()
 
+    def _write_table(self, kind, first_sample, data, utc_first):
+        """A power row's detections (a list of maps) or tracks (``(tracks, ended)``), appended to
+        the session's ``detections.csv`` or ``tracks.csv`` (opened, with its manifest record, at
+        the first row)."""
+        table = self._tables.get(kind)
+        if table is None:
+            name = f"{kind}.csv"
+            columns = tracktable.DETECTION_COLUMNS if kind == "detections" else tracktable.TRACK_COLUMNS
+            table = {"file": WholeRecordFile(self.folder / name), "name": name, "rows": 0}
+            table["file"].append(tracktable.header(columns).encode())
+            self.record("table_open", kind=kind, file=name, columns=list(columns), first_sample=int(first_sample),
+                        utc=utc_first, utc_iso=iso(utc_first), beam_table=self.beam_table_id)
+            self._tables[kind] = table
+        if kind == "detections":
+            text, n = tracktable.detections_text(data), len(data)
+        else:
+            tracks, _ = data
+            text, n = tracktable.tracks_text(first_sample, utc_first, tracks), len(tracks)
+        if text:
+            table["file"].append(text.encode())
+            table["rows"] += n
+        self._maybe_flush()
+
     # ---- housekeeping -----------------------------------------------------------
     def _maybe_flush(self, force=False):
         now = time.monotonic()
@@ -253,6 +282,9 @@ class SessionWriter:
                     seg["writer"].flush(sync=sync)
                 elif sync:
                     seg["file"].sync()
+            if sync:
+                for table in self._tables.values():
+                    table["file"].sync()
             self._last_header = now
             if sync:
                 self._last_flush = now
@@ -279,6 +311,14 @@ class SessionWriter:
                 self._close(kind)
             except OSError:
                 pass
+        for kind, table in list(self._tables.items()):
+            try:
+                table["file"].sync()
+                table["file"].close()
+                self.record("table", kind=kind, file=table["name"], rows=int(table["rows"]), closed_utc=time.time())
+            except OSError:
+                pass
+        self._tables = {}
         now = time.time()
         try:
             self.record("stop", stopped_utc=now, stopped_iso=iso(now), reason=reason,

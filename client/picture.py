@@ -48,7 +48,34 @@ def from_csv(power_csv, band: int = 0):
         from beamtap.session import read_manifest  # noqa: PLC0415
 
         marks = [(float(r["utc"]), str(r.get("text", ""))) for r in read_manifest(folder) if r.get("type") == "mark"]
-    return times, table.power_deg[:, 0], table.power_db[:, band, :], title, utc, marks
+    tracks = _tracks_from_csv(folder / "tracks.csv", utc, table.first_sample[0],
+                              None if utc else _samplerate(path))
+    return times, table.power_deg[:, 0], table.power_db[:, band, :], title, utc, marks, tracks
+
+
+def _tracks_from_csv(path: Path, utc: bool, first_sample0: int, samplerate_hz: float | None) -> dict:
+    """Confirmed track points from a ``tracks.csv`` beside the power table: id -> (times, bearings),
+    times on the picture's axis (UTC, or seconds from the first power row). Empty when there is none."""
+    import csv  # noqa: PLC0415
+
+    out: dict = {}
+    if not path.exists():
+        return out
+    try:
+        with open(path, newline="", encoding="utf-8") as f:
+            for row in csv.DictReader(f):
+                if row.get("state") != "confirmed":
+                    continue
+                when = powertable.parse_utc(row["time_utc"]) if utc else (
+                    (int(row["first_sample"]) - first_sample0) / samplerate_hz)
+                if when is None:
+                    continue
+                times, bearings = out.setdefault(int(row["track"]), ([], []))
+                times.append(float(when))
+                bearings.append(float(row["bearing_deg"]))
+    except (OSError, ValueError, KeyError) as exc:
+        raise UsageError(f"{path}: not a readable track table ({exc})") from None
+    return out
 
 
 def _samplerate(path: Path) -> float:
@@ -71,13 +98,20 @@ def from_live(endpoint: str, seconds: float, band: int = 0):
     """Collect ``seconds`` of power messages (and the beam table) from a running service."""
     rows, times = [], []
     beams = None
-    with Subscriber(endpoint, topics=["power", "beams"], timeout_s=10.0) as sub:
+    tracks: dict = {}
+    with Subscriber(endpoint, topics=["power", "beams", "tracks"], timeout_s=10.0) as sub:
         end = time.monotonic() + seconds
         while time.monotonic() < end or sub.beams is None:
             f = sub.recv()
             if f.topic == "power" and f.data is not None:
                 rows.append(np.array(f.data[min(band, f.data.shape[0] - 1)]))
                 times.append(f.time_utc)
+            elif f.topic == "tracks" and isinstance(f.data, dict) and f.header.get("band") == band:
+                for t in f.data.get("tracks", []):
+                    if isinstance(t, dict) and t.get("state") == "confirmed":
+                        tt, bb = tracks.setdefault(int(t["track"]), ([], []))
+                        tt.append(f.time_utc)
+                        bb.append(float(t["bearing_deg"]))
             beams = sub.beams
     n = len(beams["power_deg"])
     keep = [i for i, r in enumerate(rows) if len(r) == n]
@@ -85,7 +119,7 @@ def from_live(endpoint: str, seconds: float, band: int = 0):
     t = np.array([times[i] for i in keep])
     b = beams["bands_hz"][min(band, len(beams["bands_hz"]) - 1)]
     title = f"{beams.get('array_kind', '')} array (live {endpoint}), band {b[0]:g}-{b[1]:g} Hz"
-    return t, np.array(beams["power_deg"])[:, 0], data, title, True, []
+    return t, np.array(beams["power_deg"])[:, 0], data, title, True, [], tracks
 
 
 #: Picture formats by suffix, and the metadata key that carries the axes' layout in each.
@@ -93,13 +127,15 @@ _FORMATS = {".png": "Description", ".svg": "Description", ".pdf": "Subject"}
 
 
 def render(times, bearings_deg, power_db, title: str, out, range_db: float = 30.0, utc: bool = False,
-           marks=()) -> dict:
+           marks=(), tracks=None) -> dict:
     """Write the picture (PNG, SVG or PDF by the suffix); returns the plot area in pixels and the
     axes' data limits.
 
     Newest at the top, as in ``watch``; the time axis in UTC when ``utc``
     (``times`` are POSIX seconds), else in seconds from the first row.
-    ``marks`` (UTC, text) are drawn as labelled lines. Colours are
+    ``marks`` (UTC, text) are drawn as labelled lines; ``tracks`` (id ->
+    (times, bearings) of a confirmed track) as thin lines labelled with
+    their ids at their newest point. Colours are
     beamtap's palette (:mod:`beamtap.palette`). The returned dict is stored
     in the picture's metadata so a program reading it back can map pixels
     to bearing and time.
@@ -146,6 +182,15 @@ def render(times, bearings_deg, power_db, title: str, out, range_db: float = 30.
             ax.axhline(y, color="white", linewidth=1.0, linestyle="--")
             ax.text(b[0], y, f" {text}", color="white", fontsize=8, va="bottom", ha="left",
                     bbox={"facecolor": "black", "alpha": 0.5, "linewidth": 0})
+    for tid, (tt, bb) in sorted((tracks or {}).items()):
+        tt, bb = np.asarray(tt, float), np.asarray(bb, float)
+        keep = (tt >= t0) & (tt <= t1)
+        if not keep.any():
+            continue
+        ys = [to_axis(v) for v in tt[keep]]
+        ax.plot(bb[keep], ys, color="white", linewidth=0.8, alpha=0.9)
+        ax.text(bb[keep][-1], ys[-1], f" {tid}", color="white", fontsize=9, fontweight="bold", va="top",
+                bbox={"facecolor": "black", "alpha": 0.5, "linewidth": 0, "pad": 1})
     ax.set_xlabel("bearing (deg)")
     ax.set_title(title, fontsize=10)
     fig.colorbar(img, ax=ax, label="band power (dB re full scale)")

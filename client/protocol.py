@@ -5,7 +5,9 @@ Every published message is a ZeroMQ multipart message of three frames:
 1. topic: ASCII bytes, one of :data:`TOPICS` (subscribers filter on it);
 2. header: a msgpack map with string keys (see docs/protocol.md);
 3. payload: the array's bytes, little-endian, C order, ``dtype`` and
-   ``shape`` as the header says (empty for ``status`` and ``beams``).
+   ``shape`` as the header says (empty for ``status`` and ``beams``); for
+   ``detections`` and ``tracks`` a msgpack object (``dtype`` is
+   ``"msgpack"``, ``shape`` empty).
 
 Control requests and replies are single-frame msgpack maps.
 
@@ -24,7 +26,9 @@ PROTOCOL_VERSION = 2
 #: Default endpoints: the stream and the control socket, on loopback (the one definition).
 DEFAULT_PUBLISH = "tcp://127.0.0.1:5560"
 DEFAULT_CONTROL = "tcp://127.0.0.1:5561"
-TOPICS = ("power", "audio", "raw", "status", "beams")
+TOPICS = ("power", "audio", "raw", "status", "beams", "detections", "tracks")
+#: The ``dtype`` of a payload that is one msgpack object rather than an array.
+MSGPACK_PAYLOAD = "msgpack"
 #: Largest control request accepted, bytes (a 20,000-direction list is about 360 kB of msgpack).
 MAX_REQUEST_BYTES = 512 * 1024
 #: Largest message part a client reads (a raw block of 64 channels x 65536 frames is 16 MiB).
@@ -68,8 +72,9 @@ def encode(topic: str, header: dict, payload: np.ndarray | None = None) -> list:
     topic : str
     header : dict
         Topic-specific keys; ``v``, ``dtype`` and ``shape`` are filled in here.
-    payload : ndarray or None
-        Sent little-endian, C order.
+    payload : ndarray, list, dict or None
+        An array is sent little-endian, C order; a list or map (detections,
+        tracks) as one msgpack object.
 
     Returns
     -------
@@ -81,6 +86,9 @@ def encode(topic: str, header: dict, payload: np.ndarray | None = None) -> list:
     if payload is None:
         header["dtype"], header["shape"] = None, []
         body = b""
+    elif isinstance(payload, (list, dict)):  # detections, tracks: plain values
+        header["dtype"], header["shape"] = MSGPACK_PAYLOAD, []
+        body = pack(payload)
     else:
         arr = np.ascontiguousarray(payload, dtype=payload.dtype.newbyteorder("<"))
         header["dtype"], header["shape"] = arr.dtype.str, list(arr.shape)
@@ -109,6 +117,8 @@ def decode(frames) -> tuple[str, dict, np.ndarray | None]:
     dtype, shape = header.get("dtype"), header.get("shape", [])
     if dtype is None:
         return topic, header, None
+    if dtype == MSGPACK_PAYLOAD:
+        return topic, header, unpack(bytes(raw[2]))
     try:
         dt = np.dtype(dtype)
         arr = np.frombuffer(raw[2], dtype=dt) if len(raw[2]) else np.zeros(0, dt)

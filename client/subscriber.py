@@ -84,13 +84,16 @@ class Frame:
     Attributes
     ----------
     topic : str
-        ``"power"``, ``"audio"``, ``"raw"``, ``"status"`` or ``"beams"``.
+        ``"power"``, ``"audio"``, ``"raw"``, ``"status"``, ``"beams"``,
+        ``"detections"`` or ``"tracks"``.
     header : dict
         Every header key (see docs/protocol.md).
     data : ndarray or None
         ``power``: float32 (n_bands, n_beams), dB re full scale;
         ``audio``: float32 (frames, n_audio); ``raw``: float32 (frames,
-        channels); None for ``status`` and ``beams``. A read-only view on
+        channels); None for ``status`` and ``beams``; for ``detections`` a
+        list of maps and for ``tracks`` a map ``{"tracks": [...], "ended":
+        [...]}`` (see docs/protocol.md). A read-only view on
         the received bytes (no copy).
     gap : bool
         True when messages or samples were lost before this one: the

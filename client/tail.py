@@ -14,6 +14,15 @@ def format_line(frame) -> str:
     t = h.get("time_utc")
     utc = dt.datetime.fromtimestamp(t, dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ") if t else "-"
     shape = "x".join(str(s) for s in h.get("shape", [])) or "-"
+    if frame.topic == "detections" and isinstance(frame.data, list):
+        shape = f"{len(frame.data)} detections" + "".join(
+            f" {d.get('bearing_deg')}°/{d.get('snr_db')}dB" for d in frame.data[:4] if isinstance(d, dict))
+    elif frame.topic == "tracks" and isinstance(frame.data, dict):
+        live = [t for t in frame.data.get("tracks", []) if isinstance(t, dict)]
+        shape = f"{len(live)} tracks" + "".join(f" #{t.get('track')}:{t.get('state', '?')[0]}@{t.get('bearing_deg')}°"
+                                               for t in live[:4])
+        if frame.data.get("ended"):
+            shape += f" ended {frame.data['ended']}"
     gap = f"GAP({h.get('frames_lost', 0)} frames)" if h.get("gap") else ("MISSED" if frame.gap else "ok")
     if frame.missed_messages:
         gap += f" missed={frame.missed_messages}"

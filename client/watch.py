@@ -2,7 +2,8 @@
 
 A bar strip of band power across the fan with the strongest bearing
 marked, a scrolling bearing-against-time waterfall (newest row at the top),
-and a status line. Plain ANSI escapes only, so it works over ssh; colour
+the confirmed tracks (their ids over the fan and along their trails in the
+waterfall, and a list: id, bearing, rate, SNR, age), and a status line. Plain ANSI escapes only, so it works over ssh; colour
 when the terminal has it, plain characters when it does not (or with
 ``--ascii``). Quit with q or Ctrl-C; the terminal is restored either way.
 """
@@ -60,6 +61,16 @@ class View:
         self.scale_top: float | None = top_db
         self._scale_utc: float | None = None
         self.history: list[tuple[float, np.ndarray]] = []  # (utc, linear power), newest first
+        self.tracks: list[dict] = []  # the confirmed tracks now
+        self.trails: list[tuple[float, int, float]] = []  # (utc, track id, bearing), newest first
+
+    def add_tracks(self, utc: float, tracks: list) -> None:
+        """One ``tracks`` message's live tracks at ``utc``: confirmed ones are shown and leave trails."""
+        self.tracks = [t for t in tracks if isinstance(t, dict) and t.get("state") == "confirmed"]
+        for t in self.tracks:
+            self.trails.insert(0, (utc, int(t.get("track", 0)), float(t.get("bearing_deg", 0.0))))
+        while self.trails and self.trails[-1][0] < utc - self.history_s:
+            self.trails.pop()
 
     def add_row(self, utc: float, power_db: np.ndarray) -> None:
         """One averaged power row (dB) at ``utc``; rows older than ``history_s`` are forgotten."""
@@ -84,11 +95,25 @@ class View:
         top = self.scale_top if self.scale_top is not None else float(np.max(db))
         return np.clip((db - (top - self.range_db)) / self.range_db, 0.0, 1.0)
 
-    def _cells(self, frac: np.ndarray) -> str:
+    def _cells(self, frac: np.ndarray, marks: dict | None = None) -> str:
+        """One waterfall line; ``marks`` (column -> character) are drawn over it (track trails)."""
+        marks = marks or {}
         if self.colour:
-            return "".join(f"\x1b[48;5;{i}m " for i in palette.xterm256(frac)) + "\x1b[0m"
+            return "".join(f"\x1b[48;5;{i}m{marks.get(c, ' ')}" for c, i in enumerate(palette.xterm256(frac))) + \
+                "\x1b[0m"
         ramp = UNICODE_RAMP if self.unicode else ASCII_RAMP
-        return "".join(ramp[min(int(f * (len(ramp) - 1) + 0.5), len(ramp) - 1)] for f in frac)
+        return "".join(marks.get(c) or ramp[min(int(f * (len(ramp) - 1) + 0.5), len(ramp) - 1)]
+                       for c, f in enumerate(frac))
+
+    def _trail_marks(self, lines: list, az_cols: np.ndarray, now_utc: float) -> list:
+        """Per waterfall line, column -> last digit of the id of each track seen in that line's span."""
+        span = self.history_s / max(len(lines), 1)
+        marks = [{} for _ in lines]
+        for utc, tid, bearing in self.trails:
+            r = int(np.floor((now_utc - utc) / span))
+            if 0 <= r < len(marks):
+                marks[r][int(np.argmin(np.abs(az_cols - bearing)))] = str(tid % 10)
+        return marks
 
     def waterfall(self, lines: int, now_utc: float) -> list:
         """(utc of the line's newest moment, mean power dB or None) for ``lines`` lines spanning
@@ -139,16 +164,26 @@ class View:
         for i, ch in enumerate(text):
             if 0 <= start + i < plot_w and start + i != peak_col:
                 marker[start + i] = ch
+        for t in self.tracks:  # track ids over the fan: T7 at its bearing
+            c = int(np.argmin(np.abs(az[cols] - float(t.get("bearing_deg", 0.0)))))
+            for i, ch in enumerate(f"T{t.get('track')}"):
+                if c + i < plot_w:
+                    marker[c + i] = ch
         lines.append(" " * MARGIN + "".join(marker))
         lines.append(" " * MARGIN + axis(az[cols], plot_w))
+        if self.tracks:
+            now_t = now_utc if now_utc is not None else time.time()
+            lines += _wrap("tracks:  " + "  ".join(_track_text(t, now_t) for t in self.tracks), width)
         note = " (line array: a bearing and its mirror image)" if mirror_note else ""
         lines.append(f"{'UTC':>{MARGIN - 1}} waterfall, newest at top, {self.history_s:g} s{note}"[:width])
         status = _wrap(status_line, width)
         rows_left = max(0, height - len(lines) - len(status))
         now = now_utc if now_utc is not None else (self.history[0][0] if self.history else time.time())
-        for utc, row in self.waterfall(rows_left, now):
+        wf = self.waterfall(rows_left, now)
+        trail = self._trail_marks(wf, az[cols], now)
+        for (utc, row), marks in zip(wf, trail):
             stamp = time.strftime("%H:%M:%S", time.gmtime(utc))
-            cells = self._cells(self._level(row[cols])) if row is not None else " " * plot_w
+            cells = self._cells(self._level(row[cols]), marks) if row is not None else " " * plot_w
             lines.append(f"{stamp:>{MARGIN - 1}} " + cells)
         while len(lines) < height - len(status):
             lines.append("")
@@ -181,6 +216,15 @@ def axis(az: np.ndarray, width: int) -> str:
             for i, ch in zip(cells, text):
                 out[i] = ch
     return "".join(out)
+
+
+def _track_text(t: dict, now_utc: float) -> str:
+    """``#7 118.3° -0.40°/s 14.2 dB 3m02s``: id, bearing, rate, SNR, time since first seen."""
+    first = t.get("first_utc")
+    age = max(0.0, now_utc - first) if isinstance(first, (int, float)) else None
+    age_txt = "" if age is None else f" {int(age // 60)}m{int(age % 60):02d}s"
+    return (f"#{t.get('track')} {float(t.get('bearing_deg', 0.0)):.1f}° {float(t.get('rate_deg_per_s', 0.0)):+.2f}°/s "
+            f"{float(t.get('snr_db', 0.0)):.1f} dB{age_txt}")
 
 
 def _wrap(text: str, width: int) -> list:
@@ -286,7 +330,8 @@ def _loop(endpoint, view, rate_hz, band, seconds, stop, is_tty) -> int:
     sums, count = None, 0
     latest, last_power, status = None, None, None
     next_draw = time.monotonic()
-    with Subscriber(endpoint, topics=["power", "status", "beams"], timeout_s=None) as sub:
+    tracks_now: list = []
+    with Subscriber(endpoint, topics=["power", "status", "beams", "tracks"], timeout_s=None) as sub:
         poller = zmq.Poller()
         poller.register(sub.socket, zmq.POLLIN)
         if is_tty:
@@ -313,14 +358,21 @@ def _loop(endpoint, view, rate_hz, band, seconds, stop, is_tty) -> int:
                     latest, last_power = row, f
                 elif f.topic == "status":
                     status = f.header
+                elif f.topic == "tracks" and isinstance(f.data, dict) and f.header.get("band") == band:
+                    tracks_now = [t for t in f.data.get("tracks", []) if isinstance(t, dict)]
+                    if view is not None:
+                        view.add_tracks(f.time_utc, tracks_now)
             if time.monotonic() >= next_draw:
                 beams = sub.beams
                 az = np.asarray(beams["power_deg"]) if beams else None
                 if view is None:  # plain text
                     if latest is not None and az is not None and len(az) == len(latest):
                         i = int(np.argmax(latest))
+                        confirmed = [t for t in tracks_now if t.get("state") == "confirmed"]
+                        listed = "".join(f"  {_track_text(t, last_power.time_utc)}" for t in confirmed)
                         sys.stdout.write(f"{time.strftime('%Y-%m-%dT%H:%M:%SZ', time.gmtime(last_power.time_utc))} "
-                                         f"peak {az[i][0]:.1f} deg {latest[i]:.1f} dB band {band}\n")
+                                         f"peak {az[i][0]:.1f} deg {latest[i]:.1f} dB band {band}"
+                                         f"{listed.replace('°', ' deg')}\n")
                         sys.stdout.flush()
                     next_draw = time.monotonic() + period
                     continue

@@ -10,20 +10,37 @@ from beamtap.errors import UsageError
 from .config import Config
 from .engine import cost, diagnostics
 from .engine.beamformer import Beamformer
+from .engine.detect import DetectionStage
 from .engine.directions import unit_vectors
 from .engine.scene import Scene
 from .engine.shading import shading_weights
 
 
-def make_beamformer(config: Config, beams=None, threads: int = 1) -> Beamformer:
+def make_beamformer(config: Config, beams=None, threads: int = 1, live: bool = False) -> Beamformer:
     """The engine as a config describes it (a set-up it cannot build is a usage error); ``threads``
-    as :meth:`Config.engine_threads` chooses them."""
+    as :meth:`Config.engine_threads` chooses them. ``live``: helpers stay awake from one block to
+    the next (they spin for two block periods), so that a block never waits for one to wake."""
+    inp = config.input
+    spin_s = min(2.0 * inp.block_frames / inp.samplerate_hz, 1.0) if live else 0.0003
     try:
-        return Beamformer(config.geometry, config.sound_speed_mps, config.input.samplerate_hz,
-                          config.input.block_frames, beams or config.beams, config.power_batch_blocks,
-                          threads=threads)
+        return Beamformer(config.geometry, config.sound_speed_mps, inp.samplerate_hz,
+                          inp.block_frames, beams or config.beams, config.power_batch_blocks,
+                          threads=threads, spin_s=spin_s)
     except ValueError as exc:
         raise UsageError(f"{config.where}: [beams] {exc}") from None
+
+
+def make_detection(config: Config, engine: Beamformer, settings=None) -> DetectionStage:
+    """The detection and tracking stage for the engine's current beams (``settings`` over the config's)."""
+    beams = engine.beams
+    settings = settings or config.detect
+    band = beams.bands_hz[min(settings.band, len(beams.bands_hz) - 1)]
+    mid = beams.power_deg[len(beams.power_deg) // 2]
+    width = diagnostics.beamwidth_deg(config.geometry.centred_positions_m, beam_weights(config, mid), mid,
+                                      0.5 * (band[0] + band[1]), config.sound_speed_mps)
+    lobe = width if np.isfinite(width) else 10.0
+    return DetectionStage(beams.power_deg, [ev.filter.taps for ev in engine.band_filters], engine.block_frames,
+                          engine.samplerate_hz, settings, lobe_deg=lobe)
 
 
 def cost_model(config: Config, engine: Beamformer) -> cost.CostModel:

@@ -25,6 +25,7 @@ from .tomlcheck import _REQUIRED, _Table
 from .engine import cost
 from .engine import directions as dirs
 from .engine.beamformer import MAX_THREADS, BeamSet
+from .engine.detect import DetectSettings
 from .engine.geometry import ArrayGeometry
 from .engine.medium import air_sound_speed_mps, mackenzie_out_of_range, mackenzie_sound_speed_mps
 from .engine.shading import SHADINGS
@@ -134,6 +135,7 @@ class Config:
     record: RecordConfig = field(default_factory=RecordConfig)
     security: SecurityConfig = field(default_factory=SecurityConfig)
     engine: EngineConfig = field(default_factory=EngineConfig)
+    detect: DetectSettings = field(default_factory=DetectSettings)
 
     def engine_threads(self, offline: bool, override: int | None = None) -> int:
         """Threads for the engine: ``override`` (``--threads``), else ``[engine] threads``, else 1
@@ -251,8 +253,30 @@ def loads(text: str, where: str = "<config>") -> Config:
     record = _record(top.table("record", {}))
     security = _security(top.table("security", {}))
     engine = _engine(top.table("engine", {}))
+    detect = parse_detect(top.table("detect", {}), len(beams.bands_hz))
     top.done()
-    return Config(where, text, geometry, medium, inp, beams, batch, publish, control, record, security, engine)
+    return Config(where, text, geometry, medium, inp, beams, batch, publish, control, record, security, engine,
+                  detect)
+
+
+def parse_detect(t: _Table, n_bands: int, base: DetectSettings | None = None) -> DetectSettings:
+    """``[detect]`` (or a control request's ``set``) over ``base``'s values; one-line errors name the key."""
+    base = base or DetectSettings()
+    enabled = t.boolean("enabled", base.enabled)
+    pfa = t.number("pfa", base.pfa, low=1e-12, high=0.5)
+    band = t.integer("band", base.band, low=0, high=max(n_bands - 1, 0))
+    background = t.number("background_s", base.background_s, low=0.1, high=3600.0, unit="s")
+    gate = t.number("gate_deg", base.gate_deg, low=0.01, high=90.0, unit="°")
+    confirm = t.raw("confirm", list(base.confirm), "[M, N], whole numbers with 1 <= M <= N <= 50")
+    if (not isinstance(confirm, (list, tuple)) or len(confirm) != 2
+            or any(isinstance(v, bool) or not isinstance(v, int) for v in confirm)
+            or not 1 <= confirm[0] <= confirm[1] <= 50):
+        t.fail("confirm", confirm, "[M, N], whole numbers with 1 <= M <= N <= 50")
+    coast = t.number("coast_s", base.coast_s, low=0.0, high=3600.0, unit="s")
+    min_snr = t.number("min_snr_db", base.min_snr_db, low=0.0, high=60.0, unit="dB")
+    t.done()
+    return base.with_changes(enabled=enabled, pfa=pfa, band=band, background_s=background, gate_deg=gate,
+                             confirm=tuple(confirm), coast_s=coast, min_snr_db=min_snr)
 
 
 def _engine(t: _Table) -> EngineConfig:

@@ -26,12 +26,13 @@ from . import config as cfg
 from . import security
 from .engine.cost import AdmissionError
 from .publisher import bind
+from .tomlcheck import _Table
 
 log = logging.getLogger("beamtap.control")
 
-COMMANDS = ("ping", "status", "config", "beams", "record", "mark", "reload_keys")
+COMMANDS = ("ping", "status", "config", "beams", "detect", "record", "mark", "reload_keys")
 #: The keys each command takes.
-_KEYS = {"ping": {"cmd"}, "status": {"cmd"}, "config": {"cmd"}, "beams": {"cmd", "set"},
+_KEYS = {"ping": {"cmd"}, "status": {"cmd"}, "config": {"cmd"}, "beams": {"cmd", "set"}, "detect": {"cmd", "set"},
          "record": {"cmd", "action", "what", "label"}, "mark": {"cmd", "text"}, "reload_keys": {"cmd"}}
 #: Deepest nesting a request may have (the deepest real one, a grid in ``set``, has 3 levels).
 _MAX_DEPTH = 8
@@ -231,6 +232,18 @@ class ControlServer:
             raise RequestError(f"beams not applied: {exc}") from None
         return {"beam_table": table_id, "beams": beams_as_request(beams), "estimate": estimate.describe(),
                 "block_share": estimate.share}
+
+    def _cmd_detect(self, req):
+        p = self.service.pipeline
+        current = p.detection.settings
+        if "set" not in req:
+            return {"detect": current.as_dict(), "tracks_live": len(p.detection.tracker.tracks)}
+        change = req["set"]
+        if not isinstance(change, dict) or not change:
+            raise RequestError("'set' must be a non-empty map of [detect] keys")
+        settings = cfg.parse_detect(_Table(change, "detect request", "set"), len(p.engine.beams.bands_hz), current)
+        p.request_detect(settings)
+        return {"detect": settings.as_dict()}
 
     def _recorder(self):
         rec = getattr(self.service, "recorder", None)

@@ -17,7 +17,7 @@ import time
 import numpy as np
 
 from .engine.beamformer import BeamSet
-from .assembly import make_beamformer, summary
+from .assembly import make_beamformer, make_detection, summary
 
 log = logging.getLogger("beamtap.pipeline")
 
@@ -44,8 +44,11 @@ class Pipeline:
         inp = config.input
         self.block_frames = inp.block_frames
         self.samplerate_hz = inp.samplerate_hz
-        self.engine = make_beamformer(config, threads=config.engine_threads(offline=False))
+        self.engine = make_beamformer(config, threads=config.engine_threads(offline=False), live=True)
         self.bulk_delay = self.engine.bulk_delay_samples
+        self.detection = make_detection(config, self.engine)
+        self._detect_pending = None  # new settings from the control thread, taken at a block boundary
+        self._ended_pending: list = []  # tracks ended by a retarget, said in the next tracks message
         geo = config.geometry
         self._gain_cols = geo.active_channel_index
         self._gain = geo.active_gain.astype(np.float32)
@@ -86,6 +89,9 @@ class Pipeline:
             "bulk_delay_samples": self.bulk_delay,
             "samplerate_hz": self.samplerate_hz,
             "array_kind": self.config.geometry.kind,
+            # A line cannot tell a bearing from its mirror image across the line's axis: bearings
+            # (beams, detections, tracks) are on 0-180°.
+            "mirror_ambiguous": self.config.geometry.kind == "line",
         }
 
     # ---- control-thread side ---------------------------------------------
@@ -144,7 +150,16 @@ class Pipeline:
         self._release(self.engine.flush())
         self.publish_status()
 
+    def request_detect(self, settings) -> None:
+        """New detection settings (control thread); the processing thread takes them at the next block."""
+        self._detect_pending = settings
+
     def _apply_retargets(self):
+        settings, self._detect_pending = self._detect_pending, None
+        if settings is not None:
+            if not settings.enabled:
+                self._ended_pending += self.detection.tracker.reset()
+            self.detection.set_settings(settings)
         while True:
             try:
                 slot = self._retargets.get_nowait()
@@ -153,6 +168,9 @@ class Pipeline:
             if slot["cancelled"]:
                 continue
             self._release(self.engine.apply(slot["prepared"]))
+            # New beams: a new background and new tracks (the old ones end, said in the next message).
+            self._ended_pending += self.detection.tracker.reset()
+            self.detection = make_detection(self.config, self.engine, self.detection.settings)
             self.beam_table_id += 1
             self.beam_table = self._beam_table(slot["beams"])
             self.counts["retargets"] += 1
@@ -227,11 +245,24 @@ class Pipeline:
         self.publisher.publish(topic, header, payload)
 
     def _release(self, result) -> None:
-        for first, rows in zip(result.power_first_sample, result.power_db):
-            common = self._common(int(first))
+        commons = [self._common(int(first)) for first in result.power_first_sample]
+        for common, rows in zip(commons, result.power_db):
             self._send("power", common, rows)
             if self.recorder is not None:
-                self.recorder.offer("power", int(first), rows, common)
+                self.recorder.offer("power", common["first_sample"], rows, common)
+        if not len(commons):
+            return
+        band = self.detection.settings.band
+        for common, (first, _, dets, tracks, ended) in zip(commons, self.detection.rows(
+                result.power_db, result.power_first_sample, [c["time_utc"] for c in commons])):
+            ended = self._ended_pending + ended
+            self._ended_pending = []
+            header = dict(common, band=band)
+            self.publisher.publish("detections", header, dets)
+            self.publisher.publish("tracks", header, {"tracks": tracks, "ended": ended})
+            if self.recorder is not None:
+                self.recorder.offer("detections", first, dets, common)
+                self.recorder.offer("tracks", first, (tracks, ended), common)
 
     # ---- status ----------------------------------------------------------
     def status(self) -> dict:
@@ -269,8 +300,10 @@ class Pipeline:
             "latency_budget_ms": 1e3 * (self.block_frames + self.bulk_delay) / self.samplerate_hz,
             "clock": self.source.clock.as_dict(),
             "beam_table": self.beam_table_id,
-            "publishing": ["power"] + (["audio"] if len(self.engine.beams.audio_deg) else [])
+            "publishing": ["power", "detections", "tracks"] + (["audio"] if len(self.engine.beams.audio_deg) else [])
             + (["raw"] if self.config.publish.raw else []),
+            "detect": self.detection.settings.as_dict(),
+            "tracks_live": len(self.detection.tracker.tracks),
         }
         if self.recorder is not None:
             out["record"] = self.recorder.status()

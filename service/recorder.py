@@ -20,7 +20,7 @@ import threading
 import time
 from pathlib import Path
 
-from beamtap.session import SessionWriter, iso
+from beamtap.session import TABLES, SessionWriter, iso
 
 log = logging.getLogger("beamtap.recorder")
 
@@ -61,7 +61,8 @@ class Recorder:
         return kind in self._what
 
     def offer(self, kind: str, first_sample: int, data, header: dict) -> None:
-        if kind not in self._what:
+        # detections and tracks come from power: recorded whenever power is
+        if kind not in self._what and not (kind in TABLES and "power" in self._what):
             return
         try:
             self._queue.put_nowait((kind, first_sample, data, header["time_utc"], header["beam_table"]))

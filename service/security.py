@@ -39,7 +39,8 @@ log = logging.getLogger("beamtap.security")
 
 OPERATOR, READER = "operator", "reader"
 #: Requests that change the service (reader keys are refused them): command -> test of the request.
-CHANGES = {"beams": lambda req: "set" in req, "record": lambda req: req.get("action") in ("start", "stop"),
+CHANGES = {"beams": lambda req: "set" in req, "detect": lambda req: "set" in req,
+           "record": lambda req: req.get("action") in ("start", "stop"),
            "mark": lambda req: True, "reload_keys": lambda req: True}
 #: Seconds between two log lines about the same refused key.
 DENIAL_LOG_S = 60.0

@@ -181,6 +181,14 @@ class Beamformer:
         the several calls of one block hand over quickly; they stop when the
         engine is closed (:meth:`close`, or the engine as a context manager)
         or dropped.
+    spin_s : float
+        How long an idle helper spins before it sleeps (default 0.3 ms: the
+        calls of one block). A live service whose blocks arrive every few
+        milliseconds sets it above the block period, so that helpers are
+        awake when a block comes (as OpenMP runtimes do with their block
+        time): waking a sleeping thread on a virtual machine costs tens of
+        microseconds and its cold cache more. A spinning helper keeps its
+        core busy.
 
     Notes
     -----
@@ -208,7 +216,8 @@ class Beamformer:
 
     def __init__(self, geometry: ArrayGeometry, sound_speed_mps: float, samplerate_hz: float,
                  block_frames: int, beams: BeamSet, power_batch_blocks: int = 1,
-                 crossfade_s: float = CROSSFADE_S, compiled: bool | None = None, threads: int = 1):
+                 crossfade_s: float = CROSSFADE_S, compiled: bool | None = None, threads: int = 1,
+                 spin_s: float = 0.0003):
         if block_frames < 1:
             raise ValueError(f"block_frames={block_frames!r}: expected a positive whole number")
         if power_batch_blocks < 1:
@@ -223,7 +232,9 @@ class Beamformer:
         self.compiled = COMPILED_AVAILABLE if compiled is None else bool(compiled)
         if isinstance(threads, bool) or not isinstance(threads, (int, np.integer)) or not 1 <= threads <= MAX_THREADS:
             raise ValueError(f"threads={threads!r}: expected a whole number from 1 to {MAX_THREADS}")
-        self._team = _kernels.Team(int(threads)) if self.compiled and threads > 1 else None
+        if not (isinstance(spin_s, (int, float)) and 0.0 <= spin_s <= 10.0):
+            raise ValueError(f"spin_s={spin_s!r}: expected 0 to 10 seconds")
+        self._team = _kernels.Team(int(threads), float(spin_s)) if self.compiled and threads > 1 else None
         self.crossfade_frames = max(1, int(round(crossfade_s * self.samplerate_hz)))
         self.bulk_delay_samples = steering.bulk_delay_samples(
             geometry.max_steering_delay_s(self.sound_speed_mps), self.samplerate_hz)

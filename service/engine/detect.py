@@ -9,10 +9,14 @@ Background. Two steps, so that neither a passing source nor a fixed one is
 taken for the background (both common practice in passive sonar
 processing; the combination is ours):
 
-1. a long exponential average of each beam's power over time (time constant
-   ``background_s``), not updated in the cells of a detected lobe and their
-   neighbours, so a source that stops on a bearing does not drag its beam's
-   average up while it is detected;
+1. a running median of each beam's power over time: the estimate moves by
+   a fixed step towards each new row (``10 dB / background_s`` of stream,
+   larger while it starts), so a source that covers a beam for less than
+   half of the last ``background_s`` or so does not move it, however loud,
+   and a change of the noise level is followed at that pace; not updated in
+   the cells of a detected lobe and their neighbours (a stochastic-
+   approximation quantile estimate; the median of noise's gamma law below
+   gives its mean);
 2. a split window across beams: the background of beam ``i`` is the median
    of the averages of the beams ``guard + 1 .. guard + window`` away on
    either side, so the lobe of a source that was there from the start (and
@@ -83,6 +87,13 @@ from scipy.stats import gamma
 TENTATIVE, CONFIRMED, COASTING = "tentative", "confirmed", "coasting"
 #: Rows averaged before anything is reported: the background needs a few to mean anything.
 WARMUP_ROWS = 8
+#: Rows between recomputations of the split-window background (its inputs move by about
+#: block / background_s per row).
+_BACKGROUND_EVERY = 4
+#: The time medians move this far over ``background_s`` (dB), and start with steps of this
+#: size over the row count.
+_MEDIAN_SPAN_DB = 10.0
+_START_STEP_DB = 6.0
 
 
 @dataclass(frozen=True)
@@ -98,7 +109,8 @@ class DetectSettings:
     coast_s: float = 8.0
     min_snr_db: float = 6.0
     bearing_error_deg: float = 0.5  # σ_b of the tracking index
-    acceleration_deg_per_s2: float = 0.2  # σ_a of the tracking index
+    acceleration_deg_per_s2: float = 2.0  # σ_a of the tracking index
+    max_rate_deg_per_s: float = 20.0  # faster bearing rates are not believed (a track born of two stray detections)
 
     def as_dict(self) -> dict:
         return {"enabled": self.enabled, "pfa": self.pfa, "band": self.band, "background_s": self.background_s,
@@ -166,15 +178,19 @@ class Detector:
         step = _typical_step(self.power_deg)
         guard = max(1, int(math.ceil(0.75 * lobe_deg / step))) if step > 0 else 1
         self._window = _split_window(self._left, self._right, guard, window=max(4, 2 * guard))
-        self._avg = None  # per band and beam: the time average of linear power
-        self._rows = 0
-        self._hist = None
+        self._left_i, self._right_i = np.maximum(self._left, 0), np.maximum(self._right, 0)
+        self._has_left, self._has_right = self._left >= 0, self._right >= 0
+        self.reset()
         self.set_settings(settings)
 
     def set_settings(self, settings: DetectSettings) -> None:
         self.settings = settings
         floor = 10.0 ** (settings.min_snr_db / 10.0)
         self.gamma_threshold = np.array([ratio_threshold(settings.pfa, k) for k in self.shapes])
+        rows = max(settings.background_s / self.block_s, 1.0)
+        self._step_db = _MEDIAN_SPAN_DB / rows
+        # median of Gamma(k, 1/k): the noise's median over its mean, in dB
+        self._median_db = np.array([10.0 * math.log10(gamma.median(k, scale=1.0 / k)) for k in self.shapes])
         self._floor = floor
 
     @property
@@ -188,7 +204,7 @@ class Detector:
 
     def reset(self) -> None:
         """Forget the background (after a gap or a change of beams)."""
-        self._avg, self._rows, self._hist = None, 0, None
+        self._med, self._rows, self._hist, self._background, self._ratio = None, 0, None, None, None
 
     def update(self, power_db: np.ndarray) -> tuple:
         """One power row.
@@ -199,38 +215,56 @@ class Detector:
 
         Returns
         -------
-        snr_db : ndarray (bands, beams)
-            Power over the background, dB (zeros while the background warms up).
         detections : list of dict
             ``band, beam, bearing_deg, elevation_deg, level_db, snr_db`` for each peak.
         crossings : ndarray of bool (bands, beams)
             Cells over the threshold before peak picking (for counting the false-alarm rate).
+
+        The row's SNR of every cell is :attr:`snr_db` afterwards.
         """
         p_db = np.asarray(power_db, np.float64).reshape(self.n_bands, self.n_beams)
         bad = ~np.isfinite(p_db)
-        p = 10.0 ** (np.where(bad, -300.0, p_db) / 10.0)
+        if bad.any():
+            p_db = np.where(bad, -300.0, p_db)
         self._rows += 1
-        if self._avg is None:
-            self._avg = p.copy()
-        background = np.median(self._avg[:, self._window], axis=2)
-        ratio = p / np.maximum(background, 1e-300)
-        ready = self._rows > WARMUP_ROWS
-        thr = self.thresholds[:, None]
-        crossings = (ratio >= thr) & ~bad & ready
-        # The time average: not where a lobe was detected (and the neighbours of such cells).
-        busy = crossings | crossings[:, np.maximum(self._left, 0)] & (self._left >= 0)
-        busy |= crossings[:, np.maximum(self._right, 0)] & (self._right >= 0)
-        weight = max(1.0 / self._rows, 1.0 - math.exp(-self.block_s / self.settings.background_s))
-        quiet = ~busy & ~bad
-        self._avg[quiet] += weight * (p[quiet] - self._avg[quiet])
+        if self._med is None:
+            self._med = p_db.copy()
+        if self._background is None or self._rows % _BACKGROUND_EVERY == 0 or self._rows <= WARMUP_ROWS:
+            # the split-window median of the time medians: they move slowly, so every few rows is enough
+            half = self._window.shape[1] // 2
+            self._background = np.partition(self._med[:, self._window], half, axis=2)[:, :, half] \
+                - self._median_db[:, None]
+        ratio = np.exp((p_db - self._background) * (math.log(10.0) / 10.0))
+        self._ratio = ratio
+        if self._rows <= WARMUP_ROWS:
+            crossings = np.zeros(ratio.shape, bool)
+        else:
+            crossings = ratio >= self.thresholds[:, None]
+            if bad.any():
+                crossings &= ~bad
+        # The time medians step towards this row, not where a lobe was detected (nor beside it).
+        step = max(self._step_db, _START_STEP_DB / self._rows)
+        move = step * np.sign(p_db - self._med)
+        quiet = ~bad
+        if crossings.any():
+            busy = crossings | (crossings[:, self._left_i] & self._has_left) | (crossings[:, self._right_i]
+                                                                              & self._has_right)
+            quiet &= ~busy
+        self._med += np.where(quiet, move, 0.0)
         if self.law == "measured":
-            self._measure(ratio, quiet, weight)
-        snr_db = 10.0 * np.log10(np.maximum(ratio, 1e-30)) if ready else np.zeros_like(ratio)
+            self._measure(ratio, quiet, min(1.0, 1.0 / self._rows + self.block_s / self.settings.background_s))
         if not crossings.any():
-            return snr_db, [], crossings
-        return snr_db, self._peaks(p_db, snr_db, crossings), crossings
+            return [], crossings
+        return self._peaks(p_db, crossings), crossings
 
-    def _peaks(self, p_db, snr_db, crossings) -> list:
+    @property
+    def snr_db(self) -> np.ndarray:
+        """The last row's power over its background, dB (bands, beams); zeros while warming up."""
+        if self._ratio is None or self._rows <= WARMUP_ROWS:
+            return np.zeros((self.n_bands, self.n_beams))
+        return 10.0 * np.log10(np.maximum(self._ratio, 1e-30))
+
+    def _peaks(self, p_db, crossings) -> list:
         left_db = np.where(self._left >= 0, p_db[:, np.maximum(self._left, 0)], -np.inf)
         right_db = np.where(self._right >= 0, p_db[:, np.maximum(self._right, 0)], -np.inf)
         peaks = crossings & (p_db >= left_db) & (p_db > right_db)
@@ -247,7 +281,7 @@ class Detector:
                 bearing = bearing % 360.0 if self.wraps else bearing
             out.append({"band": int(band), "beam": int(beam), "bearing_deg": round(bearing, 3),
                         "elevation_deg": float(el), "level_db": round(float(level), 3),
-                        "snr_db": round(float(snr_db[band, beam]), 3)})
+                        "snr_db": round(10.0 * math.log10(max(float(self._ratio[band, beam]), 1e-30)), 3)})
         return out
 
     def _measure(self, ratio, quiet, weight) -> None:
@@ -393,8 +427,12 @@ class BearingTracker:
         line array's 0-180°).
     """
 
-    def __init__(self, settings: DetectSettings, row_s: float, wraps: bool):
+    def __init__(self, settings: DetectSettings, row_s: float, wraps: bool, span_deg: tuple | None = None,
+                 resolution_deg: float = 0.0):
         self.row_s, self.wraps = float(row_s), bool(wraps)
+        # Two sources closer than this may show as one detection (about the main lobe's width).
+        self.resolution_deg = float(resolution_deg)
+        self.span_deg = None if wraps or span_deg is None else (float(span_deg[0]), float(span_deg[1]))
         self.tracks: list[_Track] = []
         self._next_id = 1
         self.set_settings(settings)
@@ -413,22 +451,60 @@ class BearingTracker:
     def _diff(self, a, b):
         return _wrap_diff(a - b) if self.wraps else a - b
 
+    def _outside(self, bearing: float) -> bool:
+        """A coasting track predicted a gate beyond the fan's edge has left what the beams see."""
+        if self.span_deg is None:
+            return False
+        return bearing < self.span_deg[0] - self.settings.gate_deg or bearing > self.span_deg[1] + self.settings.gate_deg
+
     def update(self, detections: list, first_sample: int, utc) -> tuple:
         """One power row's detections (of the tracked band). Returns (live tracks as dicts, ended ids)."""
         s = self.settings
         m_need, n_window = int(s.confirm[0]), int(s.confirm[1])
         for t in self.tracks:  # predict
             t.bearing += t.rate * self.row_s
-        # Nearest neighbour inside each track's gate, closest pairs first.
+        # Tracks closer than a gate or the beams' resolution to another are crossing (or merging):
+        # clusters of them.
+        n_tracks = len(self.tracks)
+        cluster = list(range(n_tracks))
+
+        def root(i):
+            while cluster[i] != i:
+                cluster[i] = cluster[cluster[i]]
+                i = cluster[i]
+            return i
+
+        for i in range(n_tracks):
+            for j in range(i + 1, n_tracks):
+                if abs(self._diff(self.tracks[i].bearing, self.tracks[j].bearing)) < max(s.gate_deg,
+                                                                                         self.resolution_deg):
+                    cluster[root(i)] = root(j)
+        members: dict = {}
+        for i in range(n_tracks):
+            members.setdefault(root(i), []).append(i)
+        crowded = {self.tracks[i].id for group in members.values() if len(group) > 1 for i in group}
+        gates = [s.gate_deg * min(1.0 + 0.5 * t.misses, 4.0) for t in self.tracks]
+        # Nearest neighbour inside each track's gate (distance over gate), closest pairs first.
         pairs = []
         for ti, t in enumerate(self.tracks):
-            gate = s.gate_deg * min(1.0 + 0.5 * t.misses, 4.0)
             for di, d in enumerate(detections):
                 dist = abs(self._diff(d["bearing_deg"], t.bearing))
-                if dist <= gate:
-                    pairs.append((dist, ti, di))
-        pairs.sort()
-        used_t, used_d, matched = set(), set(), {}
+                if dist <= gates[ti]:
+                    pairs.append((dist / gates[ti], ti, di))
+        # A cluster of crossing tracks with fewer detections in its gates than tracks is not
+        # resolved: which track a detection belongs to cannot be told, so none is updated and
+        # each coasts on its own course through the crossing (its rate kept); the detections
+        # start no new track either.
+        coasting_through, used_d = set(), set()
+        for group in members.values():
+            if len(group) < 2:
+                continue
+            near = {di for _, ti, di in pairs if ti in group}
+            if len(near) < len(group):
+                coasting_through.update(group)
+                used_d |= near
+        pairs = sorted(p for p in pairs if p[1] not in coasting_through and p[2] not in used_d)
+        used_t, matched = set(coasting_through), {}
         for _, ti, di in pairs:
             if ti not in used_t and di not in used_d:
                 used_t.add(ti), used_d.add(di)
@@ -441,10 +517,11 @@ class BearingTracker:
                 t.n += 1
                 # growing-memory gains first, then the steady state
                 a = max(self.alpha, 2.0 * (2 * t.n - 1) / (t.n * (t.n + 1)))
-                b = max(self.beta, 6.0 / (t.n * (t.n + 1)))
+                b = 0.0 if t.id in crowded else max(self.beta, 6.0 / (t.n * (t.n + 1)))
                 resid = self._diff(det["bearing_deg"], t.bearing)
                 t.bearing += a * resid
-                t.rate += b * resid / self.row_s
+                limit = s.max_rate_deg_per_s
+                t.rate = min(max(t.rate + b * resid / self.row_s, -limit), limit)
                 t.misses, t.count, t.snr_db = 0, t.count + 1, det["snr_db"]
                 t.last_sample, t.last_utc = first_sample, utc
                 if t.state != CONFIRMED and sum(t.hits) >= m_need:
@@ -455,7 +532,7 @@ class BearingTracker:
                     if len(t.hits) - sum(t.hits) > n_window - m_need:
                         ended.append(t.id)
                         continue
-                elif t.misses * self.row_s > s.coast_s:
+                elif t.misses * self.row_s > s.coast_s or self._outside(t.bearing):
                     ended.append(t.id)
                     continue
                 else:
@@ -469,3 +546,53 @@ class BearingTracker:
                 self._next_id += 1
         self.tracks = kept
         return [t.as_dict(self.wraps) for t in self.tracks], ended
+
+
+class DetectionStage:
+    """Detector and tracker together, row by row: what the service and ``process`` run after band power.
+
+    Parameters
+    ----------
+    power_deg, band_taps, block_frames, samplerate_hz, settings, lobe_deg, law
+        As :class:`Detector`.
+
+    Notes
+    -----
+    :meth:`rows` takes a :class:`BlockResult`'s power rows with their UTC
+    times and returns, per row, the detections of every band and the
+    tracks of ``settings.band`` with the ids that ended.
+    """
+
+    def __init__(self, power_deg, band_taps, block_frames: int, samplerate_hz: float, settings: DetectSettings,
+                 lobe_deg: float = 4.0, law: str = "gamma"):
+        self.detector = Detector(power_deg, band_taps, block_frames, samplerate_hz, settings, lobe_deg, law)
+        az = np.asarray(power_deg, float).reshape(-1, 2)[:, 0]
+        self.tracker = BearingTracker(settings, block_frames / float(samplerate_hz), self.detector.wraps,
+                                      (float(az.min()), float(az.max())), resolution_deg=lobe_deg)
+        self.settings = settings
+
+    def set_settings(self, settings: DetectSettings) -> None:
+        self.settings = settings
+        self.detector.set_settings(settings)
+        self.tracker.set_settings(settings)
+
+    def rows(self, power_db: np.ndarray, first_samples, utcs) -> list:
+        """``[(first_sample, utc, detections, tracks, ended), ...]`` for rows ``power_db`` (K, bands, beams).
+
+        Each detection map also carries ``first_sample`` and ``time_utc``.
+        With ``settings.enabled`` false, every row has no detections and no
+        tracks (and the tracks alive before end in the first row).
+        """
+        out = []
+        for rows, first, utc in zip(power_db, first_samples, utcs):
+            first = int(first)
+            if not self.settings.enabled:
+                out.append((first, utc, [], [], self.tracker.reset()))
+                continue
+            dets, _ = self.detector.update(rows)
+            for d in dets:
+                d["first_sample"], d["time_utc"] = first, utc
+            band = min(self.settings.band, self.detector.n_bands - 1)
+            tracks, ended = self.tracker.update([d for d in dets if d["band"] == band], first, utc)
+            out.append((first, utc, dets, tracks, ended))
+        return out

@@ -11,19 +11,19 @@ from pathlib import Path
 
 import numpy as np
 
-from beamtap import __version__, powertable
+from beamtap import __version__, powertable, tracktable
 from beamtap.errors import UsageError
 from beamtap.session import json_default
 from beamtap.wavfile import WavReader, WavWriter
 
-from ..assembly import make_beamformer, summary
+from ..assembly import make_beamformer, make_detection, summary
 from ..config import Config, available_cores, loads
 from ..engine.beamformer import KERNELS_MISSING
 from .progress import Progress
 
 
 #: The files ``process`` writes into its output folder.
-PROCESS_OUTPUTS = ("power.csv", "beams.csv", "bands.csv", "audio.wav", "summary.json")
+PROCESS_OUTPUTS = ("power.csv", "beams.csv", "bands.csv", "audio.wav", "detections.csv", "tracks.csv", "summary.json")
 
 
 def session_config(folder) -> Config:
@@ -297,13 +297,35 @@ def _process_runs(config: Config, runs, out: Path, source: str, input_format: st
     batch_blocks = max(2, int(fs / 2 / block))  # about half a second of outputs per write
     bar = Progress(total, fs)
     batch_audio, batch_firsts, batch_power = [], [], []
+    stage = make_detection(config, bf)
+    track_log: dict = {}  # track id -> its summary (first and last seen, confirmed, detections)
+
+    def detect_rows(firsts, utcs, power_db):
+        """Detections and tracks of the batch's rows (on the writer thread, in order), as CSV."""
+        det_text, trk_text = [], []
+        for first, utc, dets, tracks, _ in stage.rows(power_db, firsts, utcs):
+            det_text.append(tracktable.detections_text(dets))
+            trk_text.append(tracktable.tracks_text(first, utc, tracks))
+            for t in tracks:
+                log = track_log.setdefault(t["track"], {"track": t["track"], "first_sample": t["first_sample"],
+                                                        "first_utc": t["first_utc"], "confirmed": False})
+                log.update(last_sample=t["last_sample"], last_utc=t["last_utc"], detections=t["detections"],
+                           last_bearing_deg=t["bearing_deg"], last_rate_deg_per_s=t["rate_deg_per_s"],
+                           last_snr_db=t["snr_db"])
+                if t["state"] == "confirmed" and not log["confirmed"]:
+                    log.update(confirmed=True, confirmed_sample=int(first), confirmed_bearing_deg=t["bearing_deg"])
+        df.write("".join(det_text))
+        tf.write("".join(trk_text))
 
     def write_batch(audio, firsts, power_db):
         if audio:
             audio_w.write(np.concatenate(audio))
         if firsts:
             firsts = np.concatenate(firsts)
-            pf.write(powertable.rows_text(firsts, [utc_of(n) for n in firsts], np.concatenate(power_db)))
+            power_db = np.concatenate(power_db)
+            utcs = [utc_of(n) for n in firsts]
+            pf.write(powertable.rows_text(firsts, utcs, power_db))
+            detect_rows(firsts, utcs, power_db)
 
     def hand_over():
         """The collected outputs to the writer thread: one hand-over per half second of audio."""
@@ -311,8 +333,12 @@ def _process_runs(config: Config, runs, out: Path, source: str, input_format: st
         batch_audio.clear(), batch_firsts.clear(), batch_power.clear()
 
     try:
-        with open(power_csv, "w", encoding="utf-8") as pf, _Writer() as writer, bf:
+        with (open(power_csv, "w", encoding="utf-8") as pf,
+              open(out / "detections.csv", "w", encoding="utf-8") as df,
+              open(out / "tracks.csv", "w", encoding="utf-8") as tf, _Writer() as writer, bf):
             pf.write(powertable.header(len(beams.bands_hz), len(beams.power_deg)) + "\n")
+            df.write(tracktable.header(tracktable.DETECTION_COLUMNS))
+            tf.write(tracktable.header(tracktable.TRACK_COLUMNS))
             end_prev = None
             for first, frames, channels, fmt, blocks in runs:
                 if end_prev is not None:  # a gap: silence in audio.wav keeps it on the session's time axis
@@ -383,6 +409,9 @@ def _process_runs(config: Config, runs, out: Path, source: str, input_format: st
         "nan_samples": counts["nan"],
         "clipped_samples": counts["clipped"],
         "engine_threads": threads_used,
+        "detect": config.detect.as_dict(),
+        "detections": "detections.csv (first_sample, time_utc, band, beam, bearing_deg, level_db, snr_db)",
+        "tracks": sorted(track_log.values(), key=lambda t: t["track"]),
         "summary": summary(config, bf),
     }
     (out / "summary.json").write_text(json.dumps(result, indent=2, default=json_default))
