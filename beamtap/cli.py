@@ -370,6 +370,9 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("action", choices=["start", "stop", "status"])
     r.add_argument("--what", dest="kinds", nargs="+", choices=["raw", "audio", "power"], help="what to record")
     r.add_argument("--label", default=None, help="a label for the session")
+    d = csub.add_parser("detect", help="show the detection settings, or change them (from the next block)",
+                        parents=[after])
+    d.add_argument("--set-json", metavar="JSON", help="any [detect] keys as a JSON object, e.g. '{\"pfa\": 1e-5}'")
     csub.add_parser("reload_keys", help="a secured service reads its clients and readers folders again",
                     parents=[after])
     m = csub.add_parser("mark", help="add an event mark to the recording", parents=[after])

@@ -178,8 +178,10 @@ def measure_threads(n_sensors, n_beams, n_audio, batch, blocks, repeats, threads
             "cpu_ms_per_block_n": 1e3 * float(np.median(cpu_n)), "host_steal_share": steal}
 
 
-def measure_process(threads, repeats, seconds=10.0, n_sensors=64, n_beams=181, n_audio=8):
-    """``process`` end to end against the engine's own time on the same input, alternating."""
+def measure_process(threads, repeats, seconds=10.0, n_sensors=64, n_beams=181, n_audio=8, detect=False):
+    """``process`` end to end against the engine's own time on the same input, alternating; with
+    ``detect`` false the detection stage is off (the same work as the engine's), else on (its
+    cost shows as the difference)."""
     import tempfile  # noqa: PLC0415
 
     from beamtap.service import offline  # noqa: PLC0415
@@ -190,7 +192,8 @@ def measure_process(threads, repeats, seconds=10.0, n_sensors=64, n_beams=181, n
     text = (f"[array]\nline = {{ count = {n_sensors}, spacing_m = {SPACING} }}\n[medium]\nsound_speed_mps = {C}\n"
             f"[input]\nsamplerate_hz = {FS:g}\nblock_frames = {BLOCK}\n[beams]\n"
             f"fan = {{ from_deg = 0.0, to_deg = 180.0, step_deg = {180.0 / (n_beams - 1)!r} }}\n"
-            f"band_hz = [{BAND[0]}, {BAND[1]}]\naudio_deg = [{audio}]\n")
+            f"band_hz = [{BAND[0]}, {BAND[1]}]\naudio_deg = [{audio}]\n"
+            f"[detect]\nenabled = {'true' if detect else 'false'}\n")
     config = loads(text, "<bench>")
     frames = int(seconds * FS)
     x = (0.1 * np.random.default_rng(2).standard_normal((frames, n_sensors))).astype(np.float32)
@@ -222,7 +225,8 @@ def measure_process(threads, repeats, seconds=10.0, n_sensors=64, n_beams=181, n
             t_process.append(process_run())
         steal = steal_share(ticks0, cpu_ticks())
     t_engine, t_process = np.array(t_engine), np.array(t_process)
-    return {"threads": threads, "seconds": seconds, "sensors": n_sensors, "beams": n_beams, "audio_beams": n_audio,
+    return {"threads": threads, "detect": detect, "seconds": seconds, "sensors": n_sensors, "beams": n_beams,
+            "audio_beams": n_audio,
             "engine_s": float(np.median(t_engine)), "process_s": float(np.median(t_process)),
             "engine_rtf": seconds / float(np.median(t_engine)), "process_rtf": seconds / float(np.median(t_process)),
             "process_over_engine": float(np.median(t_process / t_engine)), "host_steal_share": steal}
@@ -237,7 +241,7 @@ def main():
     blocks = 32 if args.quick else 64
     thread_rows = [measure_threads(s, nb, na, b, blocks, repeats) for s, nb, na in ((64, 181, 8), (16, 91, 4))
                    for b in (1, 4)]
-    process_rows = [measure_process(t, max(5, repeats // 2 + 2)) for t in (1, 2)]
+    process_rows = [measure_process(t, max(5, repeats // 2 + 2), detect=d) for d in (False, True) for t in (1, 2)]
     thread_md = ["## Threads (wall clock, one run)", "",
                  "| sensors | power beams | audio beams | power batch | threads | RTF 1 thread | RTF N threads "
                  "| N / 1 | reference RTF | N threads / reference | CPU ms per block (N) | host steal |",
@@ -248,10 +252,12 @@ def main():
                          f"{r['reference_rtf']:.2f} | {r['ratio_ref_n']:.1f}x | {r['cpu_ms_per_block_n']:.3f} | "
                          f"{100 * r['host_steal_share']:.1f} % |")
     thread_md += ["", "## process end to end against the engine (10 s, 64 channels, float WAV)", "",
-                  "| threads | engine s | process s | engine RTF | process RTF | process / engine | host steal |",
-                  "|---|---|---|---|---|---|---|"]
+                  "| threads | detection | engine s | process s | engine RTF | process RTF | process / engine "
+                  "| host steal |",
+                  "|---|---|---|---|---|---|---|---|"]
     for r in process_rows:
-        thread_md.append(f"| {r['threads']} | {r['engine_s']:.3f} | {r['process_s']:.3f} | {r['engine_rtf']:.1f} | "
+        thread_md.append(f"| {r['threads']} | {'on' if r['detect'] else 'off'} | {r['engine_s']:.3f} | "
+                         f"{r['process_s']:.3f} | {r['engine_rtf']:.1f} | "
                          f"{r['process_rtf']:.1f} | {r['process_over_engine']:.3f} | "
                          f"{100 * r['host_steal_share']:.1f} % |")
     if args.threads_only:

@@ -22,16 +22,22 @@ def _parse_pairs(texts, what):
     return out
 
 
+def _set_json(text: str | None, section: str) -> dict:
+    """The ``--set-json`` option: a JSON object of ``[section]`` keys (empty when not given)."""
+    if not text:
+        return {}
+    try:
+        change = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise UsageError(f"--set-json: not JSON: {exc}") from None
+    if not isinstance(change, dict) or not change:
+        raise UsageError(f"--set-json: expected a non-empty JSON object of [{section}] keys")
+    return change
+
+
 def beams_change(args) -> dict:
     """The ``set`` map from ``beamtap ctl beams`` options."""
-    change = {}
-    if args.set_json:
-        try:
-            change = json.loads(args.set_json)
-        except json.JSONDecodeError as exc:
-            raise UsageError(f"--set-json: not JSON: {exc}") from None
-        if not isinstance(change, dict):
-            raise UsageError("--set-json: expected a JSON object of [beams] keys")
+    change = _set_json(args.set_json, "beams")
     if args.fan:
         try:
             lo, hi, step = (float(p) for p in args.fan.split(","))
@@ -68,6 +74,12 @@ def run(args) -> int:
                     f"{len(b['directions_deg'])} power beams "
                     f"({b['directions_deg'][0][0]:g}° … {b['directions_deg'][-1][0]:g}°), "
                     f"audio {b['audio_deg']}, shading {b['shading']}, bands {b['band_hz']}")
+        elif args.what == "detect":
+            change = _set_json(args.set_json, "detect")
+            reply = ctl.request("detect", set=change) if change else ctl.request("detect")
+            text = "detect: " + ", ".join(f"{k} {v}" for k, v in reply["detect"].items())
+            if "tracks_live" in reply:
+                text += f"; {reply['tracks_live']} live tracks"
         elif args.what == "reload_keys":
             reply = ctl.request("reload_keys")
             k = reply["keys"]

@@ -311,6 +311,10 @@ class Controller:
     def beams(self, set: dict | None = None) -> dict:  # noqa: A002 - the protocol's own word
         return self.request("beams", set=set) if set is not None else self.request("beams")
 
+    def detect(self, set: dict | None = None) -> dict:  # noqa: A002 - the protocol's own word
+        """The detection settings in force, or change them (any ``[detect]`` keys); returns the settings."""
+        return (self.request("detect", set=set) if set is not None else self.request("detect"))["detect"]
+
     def record(self, action: str, **kwargs) -> dict:
         return self.request("record", action=action, **kwargs)["record"]
 

@@ -235,9 +235,9 @@ class ControlServer:
 
     def _cmd_detect(self, req):
         p = self.service.pipeline
-        current = p.detection.settings
+        current = p.detect_settings
         if "set" not in req:
-            return {"detect": current.as_dict(), "tracks_live": len(p.detection.tracker.tracks)}
+            return {"detect": current.as_dict(), "tracks_live": p.tracking.tracks_live}
         change = req["set"]
         if not isinstance(change, dict) or not change:
             raise RequestError("'set' must be a non-empty map of [detect] keys")

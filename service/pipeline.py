@@ -18,6 +18,7 @@ import numpy as np
 
 from .engine.beamformer import BeamSet
 from .assembly import make_beamformer, make_detection, summary
+from .tracking import TrackingThread
 
 log = logging.getLogger("beamtap.pipeline")
 
@@ -46,9 +47,8 @@ class Pipeline:
         self.samplerate_hz = inp.samplerate_hz
         self.engine = make_beamformer(config, threads=config.engine_threads(offline=False), live=True)
         self.bulk_delay = self.engine.bulk_delay_samples
-        self.detection = make_detection(config, self.engine)
-        self._detect_pending = None  # new settings from the control thread, taken at a block boundary
-        self._ended_pending: list = []  # tracks ended by a retarget, said in the next tracks message
+        # detections and tracks on their own thread, fed each block's power rows
+        self.tracking = TrackingThread(make_detection(config, self.engine), publisher, recorder)
         geo = config.geometry
         self._gain_cols = geo.active_channel_index
         self._gain = geo.active_gain.astype(np.float32)
@@ -121,6 +121,7 @@ class Pipeline:
         self.source.ring.wake()
         if self._thread is not None:
             self._thread.join(timeout=2.0)
+        self.tracking.close()  # the rows already handed over are published (and recorded) first
 
     def _run_guarded(self):
         try:
@@ -150,16 +151,16 @@ class Pipeline:
         self._release(self.engine.flush())
         self.publish_status()
 
+    @property
+    def detect_settings(self):
+        """The detection settings in force from the next power row."""
+        return self.tracking.settings
+
     def request_detect(self, settings) -> None:
-        """New detection settings (control thread); the processing thread takes them at the next block."""
-        self._detect_pending = settings
+        """New detection settings (control thread): in force from the next power row handed over."""
+        self.tracking.set_settings(settings)
 
     def _apply_retargets(self):
-        settings, self._detect_pending = self._detect_pending, None
-        if settings is not None:
-            if not settings.enabled:
-                self._ended_pending += self.detection.tracker.reset()
-            self.detection.set_settings(settings)
         while True:
             try:
                 slot = self._retargets.get_nowait()
@@ -169,8 +170,7 @@ class Pipeline:
                 continue
             self._release(self.engine.apply(slot["prepared"]))
             # New beams: a new background and new tracks (the old ones end, said in the next message).
-            self._ended_pending += self.detection.tracker.reset()
-            self.detection = make_detection(self.config, self.engine, self.detection.settings)
+            self.tracking.new_stage(make_detection(self.config, self.engine, self.tracking.settings))
             self.beam_table_id += 1
             self.beam_table = self._beam_table(slot["beams"])
             self.counts["retargets"] += 1
@@ -250,19 +250,7 @@ class Pipeline:
             self._send("power", common, rows)
             if self.recorder is not None:
                 self.recorder.offer("power", common["first_sample"], rows, common)
-        if not len(commons):
-            return
-        band = self.detection.settings.band
-        for common, (first, _, dets, tracks, ended) in zip(commons, self.detection.rows(
-                result.power_db, result.power_first_sample, [c["time_utc"] for c in commons])):
-            ended = self._ended_pending + ended
-            self._ended_pending = []
-            header = dict(common, band=band)
-            self.publisher.publish("detections", header, dets)
-            self.publisher.publish("tracks", header, {"tracks": tracks, "ended": ended})
-            if self.recorder is not None:
-                self.recorder.offer("detections", first, dets, common)
-                self.recorder.offer("tracks", first, (tracks, ended), common)
+        self.tracking.offer(result.power_db, result.power_first_sample, commons)
 
     # ---- status ----------------------------------------------------------
     def status(self) -> dict:
@@ -302,8 +290,7 @@ class Pipeline:
             "beam_table": self.beam_table_id,
             "publishing": ["power", "detections", "tracks"] + (["audio"] if len(self.engine.beams.audio_deg) else [])
             + (["raw"] if self.config.publish.raw else []),
-            "detect": self.detection.settings.as_dict(),
-            "tracks_live": len(self.detection.tracker.tracks),
+            **self.tracking.status(),
         }
         if self.recorder is not None:
             out["record"] = self.recorder.status()

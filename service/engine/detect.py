@@ -89,7 +89,7 @@ TENTATIVE, CONFIRMED, COASTING = "tentative", "confirmed", "coasting"
 WARMUP_ROWS = 8
 #: Rows between recomputations of the split-window background (its inputs move by about
 #: block / background_s per row).
-_BACKGROUND_EVERY = 4
+_BACKGROUND_EVERY = 8
 #: The time medians move this far over ``background_s`` (dB), and start with steps of this
 #: size over the row count.
 _MEDIAN_SPAN_DB = 10.0
@@ -180,18 +180,21 @@ class Detector:
         self._window = _split_window(self._left, self._right, guard, window=max(4, 2 * guard))
         self._left_i, self._right_i = np.maximum(self._left, 0), np.maximum(self._right, 0)
         self._has_left, self._has_right = self._left >= 0, self._right >= 0
+        # plain-list copies for the per-detection Python in _peaks
+        self._left_list, self._right_list = self._left.tolist(), self._right.tolist()
+        self._az_list, self._el_list = self.power_deg[:, 0].tolist(), self.power_deg[:, 1].tolist()
         self.reset()
         self.set_settings(settings)
 
     def set_settings(self, settings: DetectSettings) -> None:
         self.settings = settings
-        floor = 10.0 ** (settings.min_snr_db / 10.0)
+        self._floor = 10.0 ** (settings.min_snr_db / 10.0)
         self.gamma_threshold = np.array([ratio_threshold(settings.pfa, k) for k in self.shapes])
         rows = max(settings.background_s / self.block_s, 1.0)
         self._step_db = _MEDIAN_SPAN_DB / rows
         # median of Gamma(k, 1/k): the noise's median over its mean, in dB
         self._median_db = np.array([10.0 * math.log10(gamma.median(k, scale=1.0 / k)) for k in self.shapes])
-        self._floor = floor
+        self._thr_db = 10.0 * np.log10(self.thresholds)[:, None]
 
     @property
     def thresholds(self) -> np.ndarray:
@@ -204,7 +207,7 @@ class Detector:
 
     def reset(self) -> None:
         """Forget the background (after a gap or a change of beams)."""
-        self._med, self._rows, self._hist, self._background, self._ratio = None, 0, None, None, None
+        self._med, self._rows, self._hist, self._background, self._snr = None, 0, None, None, None
 
     def update(self, power_db: np.ndarray) -> tuple:
         """One power row.
@@ -221,76 +224,97 @@ class Detector:
             Cells over the threshold before peak picking (for counting the false-alarm rate).
 
         The row's SNR of every cell is :attr:`snr_db` afterwards.
+
+        Notes
+        -----
+        Everything is compared in dB (power over background is a difference),
+        a dozen numpy operations per row.
         """
-        p_db = np.asarray(power_db, np.float64).reshape(self.n_bands, self.n_beams)
-        bad = ~np.isfinite(p_db)
-        if bad.any():
-            p_db = np.where(bad, -300.0, p_db)
+        p_db = np.array(power_db, np.float64).reshape(self.n_bands, self.n_beams)
+        # one sum tells whether any value is NaN or infinite (dB values cannot overflow it)
+        all_finite = math.isfinite(p_db.sum())
+        finite = True
+        if not all_finite:
+            finite = np.isfinite(p_db)
+            p_db[~finite] = -300.0
         self._rows += 1
+        warming = self._rows <= WARMUP_ROWS
         if self._med is None:
             self._med = p_db.copy()
-        if self._background is None or self._rows % _BACKGROUND_EVERY == 0 or self._rows <= WARMUP_ROWS:
+        if self._background is None or warming or self._rows % _BACKGROUND_EVERY == 0:
             # the split-window median of the time medians: they move slowly, so every few rows is enough
             half = self._window.shape[1] // 2
             self._background = np.partition(self._med[:, self._window], half, axis=2)[:, :, half] \
                 - self._median_db[:, None]
-        ratio = np.exp((p_db - self._background) * (math.log(10.0) / 10.0))
-        self._ratio = ratio
-        if self._rows <= WARMUP_ROWS:
-            crossings = np.zeros(ratio.shape, bool)
+        snr = p_db - self._background
+        self._snr = snr
+        if warming:
+            crossings = np.zeros(snr.shape, bool)
         else:
-            crossings = ratio >= self.thresholds[:, None]
-            if bad.any():
-                crossings &= ~bad
+            if self.law == "measured":
+                self._thr_db = 10.0 * np.log10(self.thresholds)[:, None]
+            crossings = snr >= self._thr_db
+            if not all_finite:
+                crossings &= finite
+        cells = np.argwhere(crossings).tolist() if crossings.any() else []
         # The time medians step towards this row, not where a lobe was detected (nor beside it).
-        step = max(self._step_db, _START_STEP_DB / self._rows)
-        move = step * np.sign(p_db - self._med)
-        quiet = ~bad
-        if crossings.any():
-            busy = crossings | (crossings[:, self._left_i] & self._has_left) | (crossings[:, self._right_i]
-                                                                              & self._has_right)
-            quiet &= ~busy
-        self._med += np.where(quiet, move, 0.0)
-        if self.law == "measured":
-            self._measure(ratio, quiet, min(1.0, 1.0 / self._rows + self.block_s / self.settings.background_s))
-        if not crossings.any():
+        move = np.sign(p_db - self._med)
+        move *= max(self._step_db, _START_STEP_DB / self._rows)
+        if cells or not all_finite or self.law == "measured":
+            quiet = np.ones(p_db.shape, bool) if all_finite else finite
+            if cells:
+                band, beam = np.array(cells).T
+                quiet[band, beam] = False
+                quiet[band, self._left_i[beam]] &= ~self._has_left[beam]
+                quiet[band, self._right_i[beam]] &= ~self._has_right[beam]
+            move *= quiet
+            if self.law == "measured":
+                self._measure(snr, quiet, min(1.0, 1.0 / self._rows + self.block_s / self.settings.background_s))
+        self._med += move
+        if not cells:
             return [], crossings
-        return self._peaks(p_db, crossings), crossings
+        return self._peaks(p_db, cells), crossings
 
     @property
     def snr_db(self) -> np.ndarray:
         """The last row's power over its background, dB (bands, beams); zeros while warming up."""
-        if self._ratio is None or self._rows <= WARMUP_ROWS:
+        if self._snr is None or self._rows <= WARMUP_ROWS:
             return np.zeros((self.n_bands, self.n_beams))
-        return 10.0 * np.log10(np.maximum(self._ratio, 1e-30))
+        return self._snr.copy()
 
-    def _peaks(self, p_db, crossings) -> list:
-        left_db = np.where(self._left >= 0, p_db[:, np.maximum(self._left, 0)], -np.inf)
-        right_db = np.where(self._right >= 0, p_db[:, np.maximum(self._right, 0)], -np.inf)
-        peaks = crossings & (p_db >= left_db) & (p_db > right_db)
+    def _peaks(self, p_db, cells) -> list:
+        """Detections at the crossing ``cells`` (band, beam pairs) that are local maxima across the fan.
+
+        Plain Python over the few crossing cells: cheaper than whole-row array operations
+        when, as usual, a handful of the beams cross."""
         out = []
-        for band, beam in zip(*np.nonzero(peaks)):
-            az, el = self.power_deg[beam]
-            bearing, level = float(az), float(p_db[band, beam])
-            lb, rb = self._left[beam], self._right[beam]
+        rows, snr = p_db.tolist(), self._snr
+        for band, beam in cells:
+            row = rows[band]
+            level = row[beam]
+            lb, rb = self._left_list[beam], self._right_list[beam]
+            if (lb >= 0 and row[lb] > level) or (rb >= 0 and row[rb] >= level):
+                continue  # not the top of its lobe
+            az, el = self._az_list[beam], self._el_list[beam]
+            bearing = az
             if lb >= 0 and rb >= 0:
-                da = _wrap_diff(self.power_deg[lb, 0] - az) if self.wraps else self.power_deg[lb, 0] - az
-                db = _wrap_diff(self.power_deg[rb, 0] - az) if self.wraps else self.power_deg[rb, 0] - az
-                offset, level = _vertex(da, p_db[band, lb], p_db[band, beam], db, p_db[band, rb])
-                bearing = float(az + offset)
+                da, db = self._az_list[lb] - az, self._az_list[rb] - az
+                if self.wraps:
+                    da, db = _wrap_diff(da), _wrap_diff(db)
+                offset, level = _vertex(da, row[lb], level, db, row[rb])
+                bearing = az + offset
                 bearing = bearing % 360.0 if self.wraps else bearing
-            out.append({"band": int(band), "beam": int(beam), "bearing_deg": round(bearing, 3),
-                        "elevation_deg": float(el), "level_db": round(float(level), 3),
-                        "snr_db": round(10.0 * math.log10(max(float(self._ratio[band, beam]), 1e-30)), 3)})
+            out.append({"band": band, "beam": beam, "bearing_deg": round(bearing, 3), "elevation_deg": el,
+                        "level_db": round(level, 3), "snr_db": round(float(snr[band, beam]), 3)})
         return out
 
-    def _measure(self, ratio, quiet, weight) -> None:
-        """The running histogram of the ratio (dB) in quiet cells, for the measured threshold."""
+    def _measure(self, snr_db, quiet, weight) -> None:
+        """The running histogram of the normalised power (dB) in quiet cells, for the measured threshold."""
         if self._hist is None:
             self._hist = np.zeros((self.n_bands, len(_HIST_EDGES) - 1))
         self._hist *= 1.0 - weight
         for b in range(self.n_bands):
-            db = 10.0 * np.log10(np.maximum(ratio[b][quiet[b]], 1e-30))
+            db = snr_db[b][quiet[b]]
             self._hist[b] += np.histogram(np.clip(db, _HIST_EDGES[0], _HIST_EDGES[-1] - 1e-9), _HIST_EDGES)[0]
 
 
@@ -407,11 +431,10 @@ class _Track:
         self.count, self.snr_db, self.misses = 1, det["snr_db"], 0
 
     def as_dict(self, wraps: bool) -> dict:
-        b = self.bearing % 360.0 if wraps else self.bearing
-        return {"track": self.id, "state": self.state, "bearing_deg": round(float(b), 3),
-                "rate_deg_per_s": round(float(self.rate), 4), "snr_db": round(float(self.snr_db), 3),
-                "first_sample": int(self.first_sample), "first_utc": self.first_utc,
-                "last_sample": int(self.last_sample), "last_utc": self.last_utc, "detections": int(self.count)}
+        return {"track": self.id, "state": self.state, "bearing_deg": self.bearing % 360.0 if wraps else self.bearing,
+                "rate_deg_per_s": self.rate, "snr_db": self.snr_db, "first_sample": self.first_sample,
+                "first_utc": self.first_utc, "last_sample": self.last_sample, "last_utc": self.last_utc,
+                "detections": self.count}
 
 
 class BearingTracker:
@@ -460,6 +483,8 @@ class BearingTracker:
     def update(self, detections: list, first_sample: int, utc) -> tuple:
         """One power row's detections (of the tracked band). Returns (live tracks as dicts, ended ids)."""
         s = self.settings
+        if not self.tracks and not detections:
+            return [], []
         m_need, n_window = int(s.confirm[0]), int(s.confirm[1])
         for t in self.tracks:  # predict
             t.bearing += t.rate * self.row_s
@@ -474,10 +499,11 @@ class BearingTracker:
                 i = cluster[i]
             return i
 
-        for i in range(n_tracks):
+        near_deg = max(s.gate_deg, self.resolution_deg)
+        for i in range(n_tracks - 1):
+            bi = self.tracks[i].bearing
             for j in range(i + 1, n_tracks):
-                if abs(self._diff(self.tracks[i].bearing, self.tracks[j].bearing)) < max(s.gate_deg,
-                                                                                         self.resolution_deg):
+                if abs(self._diff(bi, self.tracks[j].bearing)) < near_deg:
                     cluster[root(i)] = root(j)
         members: dict = {}
         for i in range(n_tracks):
