@@ -20,6 +20,7 @@ import numpy as np
 from beamtap import palette, powertable
 from beamtap.errors import UsageError
 
+from .protocol import valid_track
 from .subscriber import Subscriber
 
 
@@ -108,7 +109,7 @@ def from_live(endpoint: str, seconds: float, band: int = 0):
                 times.append(f.time_utc)
             elif f.topic == "tracks" and isinstance(f.data, dict) and f.header.get("band") == band:
                 for t in f.data.get("tracks", []):
-                    if isinstance(t, dict) and t.get("state") == "confirmed":
+                    if valid_track(t) and t.get("state") == "confirmed":
                         tt, bb = tracks.setdefault(int(t["track"]), ([], []))
                         tt.append(f.time_utc)
                         bb.append(float(t["bearing_deg"]))

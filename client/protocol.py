@@ -54,6 +54,15 @@ def unpack(data: bytes, max_bytes: int | None = None):
         raise ProtocolError(f"not a msgpack object ({type(exc).__name__})") from None
 
 
+def valid_track(t) -> bool:
+    """A ``tracks`` entry with the values a reader uses: an integer ``track`` and finite numbers for
+    ``bearing_deg`` (and ``rate_deg_per_s``, ``snr_db`` when present). Readers skip anything else."""
+    def number(v):
+        return isinstance(v, (int, float)) and not isinstance(v, bool) and np.isfinite(v)
+    return (isinstance(t, dict) and type(t.get("track")) is int and number(t.get("bearing_deg"))
+            and number(t.get("rate_deg_per_s", 0.0)) and number(t.get("snr_db", 0.0)))
+
+
 def _plain(o):
     if isinstance(o, np.generic):
         return o.item()

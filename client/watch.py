@@ -22,6 +22,7 @@ import zmq
 from beamtap import palette
 from beamtap.errors import UsageError
 
+from .protocol import valid_track
 from .subscriber import Subscriber
 
 ASCII_RAMP = " .:-=+*#%@"
@@ -66,7 +67,7 @@ class View:
 
     def add_tracks(self, utc: float, tracks: list) -> None:
         """One ``tracks`` message's live tracks at ``utc``: confirmed ones are shown and leave trails."""
-        self.tracks = [t for t in tracks if isinstance(t, dict) and t.get("state") == "confirmed"]
+        self.tracks = [t for t in tracks if valid_track(t) and t.get("state") == "confirmed"]
         for t in self.tracks:
             self.trails.insert(0, (utc, int(t.get("track", 0)), float(t.get("bearing_deg", 0.0))))
         while self.trails and self.trails[-1][0] < utc - self.history_s:
@@ -359,7 +360,7 @@ def _loop(endpoint, view, rate_hz, band, seconds, stop, is_tty) -> int:
                 elif f.topic == "status":
                     status = f.header
                 elif f.topic == "tracks" and isinstance(f.data, dict) and f.header.get("band") == band:
-                    tracks_now = [t for t in f.data.get("tracks", []) if isinstance(t, dict)]
+                    tracks_now = [t for t in f.data.get("tracks", []) if valid_track(t)]
                     if view is not None:
                         view.add_tracks(f.time_utc, tracks_now)
             if time.monotonic() >= next_draw:

@@ -215,3 +215,50 @@ def test_process_on_a_full_disk_is_a_one_line_error(tmp_path, rng):
     assert r.returncode == 2, r.stderr
     assert "Traceback" not in r.stderr and len(r.stderr.strip().splitlines()) == 1
     assert "too large" in r.stderr.lower() or "no space" in r.stderr.lower()
+
+
+def test_watch_marks_confirmed_tracks_and_lists_them():
+    """The terminal view: a confirmed track's id over the fan at its bearing, its trail in the
+    waterfall, and a list line with id, bearing, rate, SNR and age; tentative ones are not shown."""
+    from beamtap.client.watch import View
+
+    view = View(colour=False, unicode=True, range_db=30.0, history_s=60.0)
+    az = np.column_stack([np.arange(0.0, 181.0, 2.0), np.zeros(91)])
+    row = np.full(91, -60.0)
+    row[59] = -30.0  # 118°
+    for i in range(20):
+        view.add_row(1000.0 + i, row)
+        view.add_tracks(1000.0 + i, [
+            {"track": 7, "state": "confirmed", "bearing_deg": 118.0, "rate_deg_per_s": -0.4, "snr_db": 14.2,
+             "first_utc": 1000.0 - 182.0},
+            {"track": 8, "state": "tentative", "bearing_deg": 40.0, "rate_deg_per_s": 0.0, "snr_db": 7.0}])
+    screen = view.render(100, 40, "t", az, row, "status", True, now_utc=1019.0)
+    assert "T7" in screen and "T8" not in screen
+    assert "#7 118.0° -0.40°/s 14.2 dB 3m21s" in screen
+    assert screen.count("7") >= 10  # the trail: the id's last digit down the waterfall
+
+
+def test_tail_shows_the_new_topics():
+    from beamtap.client.subscriber import Frame
+    from beamtap.client.tail import format_line
+
+    det = Frame("detections", {"seq": 3, "first_sample": 1024, "shape": []},
+                [{"bearing_deg": 118.3, "snr_db": 14.0}])
+    trk = Frame("tracks", {"seq": 3, "first_sample": 1024, "shape": []},
+                {"tracks": [{"track": 7, "state": "confirmed", "bearing_deg": 118.3}], "ended": [5]})
+    assert "1 detections 118.3°/14.0dB" in format_line(det)
+    line = format_line(trk)
+    assert "1 tracks #7:c@118.3°" in line and "ended [5]" in line
+    junk = Frame("tracks", {"seq": 4}, {"tracks": ["not a map", 3], "ended": []})
+    assert "0 tracks" in format_line(junk)  # a forged payload is shown, not fatal
+
+
+def test_watch_skips_forged_tracks():
+    from beamtap.client.watch import View
+
+    view = View(colour=True, unicode=False, history_s=60.0)
+    view.add_tracks(5.0, [{"track": 1, "state": "confirmed", "bearing_deg": "north"}, None, 7,
+                          {"track": True, "state": "confirmed", "bearing_deg": 3.0},
+                          {"track": 2, "state": "confirmed", "bearing_deg": float("nan")},
+                          {"track": 3, "state": "confirmed", "bearing_deg": 33.0}])
+    assert [t["track"] for t in view.tracks] == [3]
