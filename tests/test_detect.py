@@ -237,3 +237,44 @@ def test_hostile_rows_do_not_break_the_stage():
     for i in range(10):  # across north: 359° and 1° are two degrees apart
         tracks, _ = tracker.update([{"bearing_deg": (359.0 + 0.5 * i) % 360.0, "snr_db": 10.0}], i, None)
     assert len(tracks) == 1 and tracks[0]["state"] == "confirmed" and tracks[0]["rate_deg_per_s"] > 0
+
+
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(kind=st.sampled_from(["fan", "circle", "grid", "scattered"]), n=st.integers(1, 40),
+       rows=st.lists(st.lists(st.one_of(st.floats(-200, 50), st.just(float("nan")), st.just(float("inf")),
+                                        st.just(float("-inf"))), min_size=1, max_size=1), min_size=1, max_size=40),
+       seed=st.integers(0, 2**16))
+def test_any_beam_set_and_any_rows_never_break_detection(kind, n, rows, seed):
+    """Fuzzing (hypothesis): fans, full circles, grids and scattered directions of 1 to 40 beams,
+    rows of any values (NaN, infinities, huge): the stage never raises and reports sane values."""
+    rng = np.random.default_rng(seed)
+    if kind == "fan":
+        az = np.linspace(0.0, 180.0, n)
+        el = np.zeros(n)
+    elif kind == "circle":
+        az = np.arange(n) * 360.0 / n
+        el = np.zeros(n)
+    elif kind == "grid":
+        az = np.tile(np.linspace(0.0, 350.0, max(n // 2, 1)), 2)[:n]
+        el = np.repeat([0.0, 20.0], max(n // 2, 1))[:n]
+        n = len(az)
+    else:
+        az, el = rng.uniform(-180, 360, n), rng.uniform(-90, 90, n)
+    power_deg = np.column_stack([az, el])
+    stage = DetectionStage(power_deg, [np.hanning(33)], 256, FS, DetectSettings(pfa=0.2, min_snr_db=0.0),
+                           lobe_deg=float(rng.uniform(0.5, 30.0)))
+    base = rng.normal(-60.0, 3.0, (len(rows) + 12, 1, n))
+    for i, r in enumerate(rows):
+        base[12 + i, 0, rng.integers(0, n)] = r[0]
+    out = stage.rows(base, np.arange(len(base)) * 256, [None] * len(base))
+    assert len(out) == len(base)
+    for _, _, dets, tracks, ended in out:
+        for d in dets:
+            assert np.isfinite(d["bearing_deg"]) and np.isfinite(d["snr_db"]) and 0 <= d["beam"] < n
+        for t in tracks:
+            assert np.isfinite(t["bearing_deg"]) and abs(t["rate_deg_per_s"]) <= 20.0
+        assert all(isinstance(e, int) for e in ended)

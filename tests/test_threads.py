@@ -251,3 +251,26 @@ def test_engine_threads_defaults(tmp_path):
     assert fixed.engine_threads(offline=False) == fixed.engine_threads(offline=True) == 2
     with pytest.raises(Exception, match="engine"):
         loads(CONFIG.format(engine="[engine]\nthreads = 2\nspeed = 3"))
+
+
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+
+@compiled_only
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(sizes=st.lists(st.integers(0, 700), min_size=1, max_size=12), threads=st.integers(2, 5),
+       sensors=st.integers(1, 20), seed=st.integers(0, 2**16))
+def test_any_call_sizes_and_thread_counts_give_the_one_thread_output(sizes, threads, sensors, seed):
+    """Fuzzing (hypothesis): chunks of 0 to 700 frames (fewer frames than threads included), 2 to 5
+    threads, 1 to 20 sensors: the same output as one thread, exactly."""
+    geo = ArrayGeometry.line(sensors, 0.3)
+    beams = BeamSet(fan(0, 180, 15.0), fan(45, 135, 45.0), bands_hz=[(500.0, 2000.0)])
+    x = (0.1 * np.random.default_rng(seed).standard_normal((sum(sizes), sensors))).astype(np.float32)
+    one = Beamformer(geo, C, FS, 256, beams)
+    with Beamformer(geo, C, FS, 256, beams, threads=threads) as many:
+        a1, p1, _ = _run(one, x, sizes) if len(x) else (None, None, None)
+        an, pn, _ = _run(many, x, sizes) if len(x) else (None, None, None)
+    if len(x):
+        np.testing.assert_array_equal(an, a1)
+        np.testing.assert_array_equal(pn, p1)
