@@ -508,7 +508,9 @@ class Beamformer:
         steer = self._steer[0]
         if not self._pending_start:
             return _empty_rows(len(steer.bands), len(steer.beams.power_deg))
-        spec = np.stack(self._pending_spec)  # (K, bins from k1, rows)
+        pending = self._pending_spec
+        # (K, bins from k1, rows); one block (unbatched power) needs no copy: a view of its spectra
+        spec = pending[0][None] if len(pending) == 1 and pending[0].flags.c_contiguous else np.stack(pending)
         # Rows are stamped with the input span they describe: block start less D and the band delay.
         starts = np.array(self._pending_start, np.int64) - (self.bulk_delay_samples + steer.band_delay)
         self._pending_start, self._pending_spec = [], []
@@ -517,7 +519,10 @@ class Beamformer:
         for i, ev in enumerate(steer.bands):
             lo = int(ev.bins[0]) - steer.k1
             ms = ev.mean_square_in(y, lo, self.compiled, self._team)
-            out[:, i, :] = 10.0 * np.log10(np.maximum(ms, 1e-30))
+            np.maximum(ms, 1e-30, out=ms)
+            np.log10(ms, out=ms)
+            ms *= 10.0
+            out[:, i, :] = ms
         return out, starts
 
 

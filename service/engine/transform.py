@@ -131,7 +131,9 @@ def cache_aligned(shape: tuple, dtype, zero: bool = False) -> np.ndarray:
     two-thread FFT three times slower than one thread on a misaligned output).
     """
     dtype = np.dtype(dtype)
-    n = int(np.prod(shape))
+    n = 1
+    for s in shape:
+        n *= int(s)
     raw = (np.zeros if zero else np.empty)(n + 64 // dtype.itemsize, dtype)
     skip = (-raw.__array_interface__["data"][0] % 64) // dtype.itemsize
     return raw[skip:skip + n].reshape(shape)
