@@ -28,10 +28,10 @@ class _Basis:
     beam is steered in the same rows by :meth:`transform`.
     """
 
-    def __init__(self, geometry: ArrayGeometry):
+    def __init__(self, geometry: ArrayGeometry, allow_pairs: bool = True):
         channels = geometry.active_channel_index
         pairs = _mirror_pairs(geometry.centred_positions_m, geometry.active_gain, geometry.active_trim_s)
-        if len(channels) < _PAIR_BASIS_MIN_SENSORS:
+        if len(channels) < _PAIR_BASIS_MIN_SENSORS or not allow_pairs:
             pairs = None
         self.pairs = pairs
         # Every input channel feeds an active sensor, in order: a view, no gather. Channels past the

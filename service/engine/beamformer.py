@@ -181,6 +181,10 @@ class Beamformer:
         the several calls of one block hand over quickly; they stop when the
         engine is closed (:meth:`close`, or the engine as a context manager)
         or dropped.
+    pair_rows : bool
+        Let the history hold sums and differences of mirror pairs where the
+        array allows (default). False keeps one row per sensor, as adaptive
+        steering needs (see :mod:`.mvdr`).
     spin_s : float
         How long an idle helper spins before it sleeps (default 0.3 ms: the
         calls of one block). A live service whose blocks arrive every few
@@ -217,7 +221,7 @@ class Beamformer:
     def __init__(self, geometry: ArrayGeometry, sound_speed_mps: float, samplerate_hz: float,
                  block_frames: int, beams: BeamSet, power_batch_blocks: int = 1,
                  crossfade_s: float = CROSSFADE_S, compiled: bool | None = None, threads: int = 1,
-                 spin_s: float = 0.0003):
+                 spin_s: float = 0.0003, pair_rows: bool = True):
         if block_frames < 1:
             raise ValueError(f"block_frames={block_frames!r}: expected a positive whole number")
         if power_batch_blocks < 1:
@@ -238,7 +242,10 @@ class Beamformer:
         self.crossfade_frames = max(1, int(round(crossfade_s * self.samplerate_hz)))
         self.bulk_delay_samples = steering.bulk_delay_samples(
             geometry.max_steering_delay_s(self.sound_speed_mps), self.samplerate_hz)
-        self._basis = _Basis(geometry)
+        self._basis = _Basis(geometry, allow_pairs=pair_rows)
+        #: Called with each frame's channel spectra (n_fft // 2 + 1, rows) as they are formed (an
+        #: adaptive stage's cross-spectra are estimated from them); None for nothing.
+        self.on_spectra = None
         self._steer = self._build(beams)
         self.reset(0)
 
@@ -435,6 +442,8 @@ class Beamformer:
             nan_count += bad
             clip_count += clipped
             spec = steer.fft(frame)  # (n_fft//2+1, rows), one FFT serves both paths
+            if self.on_spectra is not None:
+                self.on_spectra(spec)
             if n_audio:
                 audio[pos:pos + b] = self._audio(spec, b, n_fft)
             self._sample += b

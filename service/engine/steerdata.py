@@ -25,9 +25,7 @@ class _Steering:
                  beams: BeamSet, compiled: bool, team=None):
         self.beams = beams
         self.fft = ColumnFFT(n_fft, compiled, team)
-        pos = geometry.centred_positions_m
-        gain = geometry.active_gain
-        trims = geometry.active_trim_s
+        self._context = (geometry, basis, sound_speed_mps, samplerate_hz, bulk_delay, n_fft, compiled, team)
         filters = [bandpower.design_band_filter(b, samplerate_hz, beams.transition_hz) for b in beams.bands_hz]
         # Every band's row describes the same input span: bands with shorter filters are held back
         # to the longest filter's delay.
@@ -39,19 +37,51 @@ class _Steering:
         power_bins = np.arange(self.k1, self.k2 + 1)
 
         def product(directions_deg, bins):
-            units = unit_vectors(directions_deg[:, 0], directions_deg[:, 1])
-            w = shading.shading_weights(geometry.kind, geometry.positions_m, geometry.active, units,
-                                        beams.shading, beams.sidelobe_db, beams.nbar) * gain[None, :]
-            tau = steering.relative_delays_samples(pos, trims, units, sound_speed_mps, samplerate_hz)
-            h = steering.steering_spectra(bulk_delay + tau, w, n_fft, bins)
+            h, w, _ = self.das_steering(directions_deg, bins)
             pairs = basis.pairs
             symmetric = pairs is not None and np.allclose(w[:, pairs[0]], w[:, pairs[1]], rtol=1e-9, atol=0.0)
             return _BeamProduct(h, basis, symmetric, bulk_delay, n_fft, bins, compiled, team)
 
+        self.power_bins = power_bins
         self.power = product(beams.power_deg, power_bins)
         # the real form leaves out a delay of `lag` samples; each band's factor puts it back
         self.bands = [ev.delayed(self.power.lag) for ev in self.bands]
         self.audio = product(beams.audio_deg, np.arange(n_fft // 2 + 1)) if len(beams.audio_deg) else None
+
+    def das_steering(self, directions_deg, bins) -> tuple:
+        """Delay-and-sum steering ``h`` (bins, beams, sensors) of ``directions_deg`` on ``bins``, with
+        the weights (shading x gain, (beams, sensors)) and relative delays (samples) it is made of."""
+        geometry, _, c, fs, bulk_delay, n_fft, _, _ = self._context
+        beams = self.beams
+        units = unit_vectors(directions_deg[:, 0], directions_deg[:, 1])
+        w = shading.shading_weights(geometry.kind, geometry.positions_m, geometry.active, units,
+                                    beams.shading, beams.sidelobe_db, beams.nbar) * geometry.active_gain[None, :]
+        tau = steering.relative_delays_samples(geometry.centred_positions_m, geometry.active_trim_s, units, c, fs)
+        return steering.steering_spectra(bulk_delay + tau, w, n_fft, bins), w, tau
+
+    def manifold(self, directions_deg, bins) -> np.ndarray:
+        """What the sensors hear, per unit of source spectrum, of a plane wave from each direction:
+        ``a[k, b, m] = exp(+2 pi j k tau_m / N) / gain_m`` (bins, beams, sensors), the convention in
+        which the delay-and-sum steering gives ``sum_m h[k, b, m] a[k, b, m]`` close to the bulk delay's
+        phase ``exp(-2 pi j k D / N)``."""
+        geometry, _, c, fs, _, n_fft, _, _ = self._context
+        units = unit_vectors(directions_deg[:, 0], directions_deg[:, 1])
+        tau = steering.relative_delays_samples(geometry.centred_positions_m, geometry.active_trim_s, units, c, fs)
+        phase = 2.0 * np.pi * np.asarray(bins)[:, None, None] * tau[None, :, :] / n_fft
+        return np.exp(1j * phase) / geometry.active_gain[None, None, :]
+
+    def with_steering(self, power_h: np.ndarray, audio_h: np.ndarray | None) -> "_Steering":
+        """The same set-up (FFT, bands) with other steering: ``power_h`` (power bins, beams, sensors)
+        and ``audio_h`` (all bins, audio beams, sensors), e.g. adaptive weights. Sensor rows only."""
+        _, basis, _, _, bulk_delay, n_fft, compiled, team = self._context
+        if basis.pairs is not None:
+            raise ValueError("with_steering: the history holds mirror-pair rows; build the engine with pair_rows=False")
+        out = object.__new__(_Steering)
+        out.__dict__.update(self.__dict__)
+        out.power = _BeamProduct(power_h, basis, False, bulk_delay, n_fft, self.power_bins, compiled, team)
+        out.audio = None if audio_h is None else _BeamProduct(audio_h, basis, False, bulk_delay, n_fft,
+                                                              np.arange(n_fft // 2 + 1), compiled, team)
+        return out
 
     @property
     def nbytes(self) -> int:

@@ -1,0 +1,130 @@
+"""The streaming engine with minimum-variance (MVDR) beams: delay-and-sum steering remade from
+loaded MVDR weights (:mod:`.adaptive`) every ``update_s``.
+
+Each frame's channel spectra (the engine's own FFT) update the averaged
+cross-spectral matrices on the adaptive bins. Every ``update_s`` of stream
+the power and audio steering on those bins is rebuilt from the MVDR weights
+and handed to the engine at the block boundary, like a retarget: power
+blocks pending are formed with the weights they were recorded under, audio
+crossfades over 10 ms. Outside the adaptive band the steering stays
+delay-and-sum.
+
+The weights are scaled so that a plane wave from the look direction comes
+out exactly as through the delay-and-sum steering (same bulk delay D, gain
+one): with ``a`` the look direction's manifold and ``g = sum(h_das a)`` the
+delay-and-sum response (``exp(-j w D)`` up to the fractional-delay
+filter's ripple), the steering is ``h = g conj(w)``, ``w^H a = 1``.
+
+Not wired into the service yet (issue 22 is open): the engine-level pieces
+and their tests (tests/test_mvdr.py).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .adaptive import CrossSpectra, mvdr_weights
+from .beamformer import Beamformer, BlockResult, _concat_results
+
+
+@dataclass(frozen=True)
+class AdaptiveSettings:
+    """``[beams.adaptive]``: MVDR settings."""
+
+    average_s: float = 1.0  # cross-spectra averaging time constant
+    loading_db: float = 10.0  # diagonal loading over the estimated sensor noise per bin
+    update_s: float = 0.25  # how often the weights are recomputed
+    band_hz: tuple | None = None  # where R is estimated and weights adapt; None: the power bands' span
+
+
+class AdaptiveBeamformer:
+    """MVDR power and audio beams over a delay-and-sum :class:`Beamformer` built with ``pair_rows=False``.
+
+    Parameters
+    ----------
+    engine : Beamformer
+    settings : AdaptiveSettings
+
+    Attributes
+    ----------
+    fallback_bins : int
+        Bins given delay-and-sum weights so far (a covariance not finite or
+        not positive definite).
+    updates : int
+        Weight updates applied so far.
+    """
+
+    def __init__(self, engine: Beamformer, settings: AdaptiveSettings = AdaptiveSettings()):
+        if engine.mirror_pair_rows:
+            raise ValueError("engine: build it with pair_rows=False (adaptive weights need one row per sensor)")
+        self.engine, self.settings = engine, settings
+        base, n_fft = engine._steer
+        self._base, self._n_fft = base, n_fft
+        fs = engine.samplerate_hz
+        bins_hz = np.arange(n_fft // 2 + 1) * fs / n_fft
+        lo, hi = settings.band_hz or (min(b[0] for b in base.beams.bands_hz), max(b[1] for b in base.beams.bands_hz))
+        if not 0.0 < lo < hi <= fs / 2:
+            raise ValueError(f"band_hz={settings.band_hz!r}: expected 0 < low < high <= {fs / 2:g} Hz")
+        self.bins = np.nonzero((bins_hz >= lo) & (bins_hz <= hi))[0]  # the adaptive bins
+        if not len(self.bins):
+            raise ValueError(f"band_hz=({lo:g}, {hi:g}): no FFT bin in it at {fs:g} Hz and {n_fft} points")
+        n_sensors = engine._basis.n_rows
+        self.cross = CrossSpectra(len(self.bins), n_sensors, settings.average_s, engine.block_frames / fs)
+        beams = base.beams
+        # Power: the power bins that adapt, their delay-and-sum steering, manifold and response.
+        p_bins = base.power_bins
+        self._p_sel = np.nonzero(np.isin(p_bins, self.bins))[0]
+        self._p_in_a = np.searchsorted(self.bins, p_bins[self._p_sel])
+        self._p_h, _, _ = base.das_steering(beams.power_deg, p_bins)
+        self._p_a = base.manifold(beams.power_deg, p_bins[self._p_sel])
+        self._p_g = np.einsum("kbm,kbm->kb", self._p_h[self._p_sel], self._p_a)
+        self._audio = len(beams.audio_deg) > 0
+        if self._audio:
+            all_bins = np.arange(n_fft // 2 + 1)
+            self._a_h, _, _ = base.das_steering(beams.audio_deg, all_bins)
+            self._a_a = base.manifold(beams.audio_deg, self.bins)
+            self._a_g = np.einsum("kbm,kbm->kb", self._a_h[self.bins], self._a_a)
+        self._update_frames = max(1, int(round(settings.update_s * fs)))
+        self._since = 0
+        self._due = False
+        self.fallback_bins = 0
+        self.updates = 0
+        engine.on_spectra = self._observe
+
+    def _observe(self, spec: np.ndarray) -> None:
+        """One frame's channel spectra (the engine calls this): into the averaged cross-spectra."""
+        self.cross.update(spec[self.bins])
+
+    def process(self, block: np.ndarray) -> BlockResult:
+        """Beamform one block (as :meth:`Beamformer.process`); new weights take effect at its end."""
+        out = self.engine.process(block)
+        self._since += len(block)
+        if self._since < self._update_frames:
+            return out
+        self._since = 0
+        released = self.engine.apply((self._steering(), self._n_fft))
+        if not len(released.power_first_sample):
+            return out
+        rows = _concat_results([(out.power_db, out.power_first_sample),
+                                (released.power_db, released.power_first_sample)],
+                               out.power_db.shape[1], out.power_db.shape[2])
+        return BlockResult(out.first_sample, out.audio, rows[0], rows[1], out.nan_count, out.clip_count)
+
+    def _steering(self):
+        """Delay-and-sum steering with the adaptive bins replaced by the MVDR weights' (see the module notes)."""
+        r = self.cross.r
+        power_h = self._p_h.copy()
+        if len(self._p_sel):
+            w, fallback = mvdr_weights(r[self._p_in_a], self._p_a, self.settings.loading_db)
+            power_h[self._p_sel] = self._p_g[..., None] * np.conj(w)
+            self.fallback_bins += int(fallback.sum())
+        audio_h = None
+        if self._audio:
+            audio_h = self._a_h.copy()
+            w, fallback = mvdr_weights(r, self._a_a, self.settings.loading_db)
+            audio_h[self.bins] = self._a_g[..., None] * np.conj(w)
+            self.fallback_bins += int(fallback.sum())
+        self.updates += 1
+        return self._base.with_steering(power_h, audio_h)
