@@ -37,7 +37,6 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy.linalg import LinAlgError, cho_factor, cho_solve
 
 
 def noise_power(r: np.ndarray) -> np.ndarray:
@@ -53,6 +52,54 @@ def noise_power(r: np.ndarray) -> np.ndarray:
     """
     lam = np.linalg.eigvalsh(r)  # ascending, per bin
     return np.maximum(lam[:, : max(1, lam.shape[1] // 2)].mean(axis=1), 0.0)
+
+
+def loaded_factors(r: np.ndarray, loading_db: float) -> tuple:
+    """Cholesky factors of the loaded matrices ``R + eps I`` per bin (see :func:`mvdr_weights`).
+
+    Returns
+    -------
+    lower : ndarray (bins, M, M), complex
+        ``L`` with ``L L^H = R + eps I`` (identity where the bin falls back).
+    fallback : ndarray (bins,), bool
+        Bins whose matrix is not finite or not positive definite even loaded.
+    """
+    r = np.asarray(r, np.complex128)
+    n_bins, m = r.shape[0], r.shape[1]
+    finite = np.isfinite(r).all(axis=(1, 2))
+    fallback = ~finite
+    scale = 10.0 ** (loading_db / 10.0) if math.isfinite(loading_db) else 0.0
+    loaded = np.where(finite[:, None, None], r, 0.0)
+    if finite.any():
+        eps = np.zeros(n_bins)
+        eps[finite] = scale * noise_power(r[finite])
+        loaded = loaded + eps[:, None, None] * np.eye(m)
+    lower = np.broadcast_to(np.eye(m, dtype=np.complex128), r.shape).copy()
+    try:  # one call for every bin; a bin that cannot be factored sends us bin by bin
+        lower[finite] = np.linalg.cholesky(loaded[finite])
+    except np.linalg.LinAlgError:
+        for k in np.nonzero(finite)[0]:
+            try:
+                lower[k] = np.linalg.cholesky(loaded[k])
+            except np.linalg.LinAlgError:
+                fallback[k] = True
+    return lower, fallback
+
+
+def weights_from_factors(lower: np.ndarray, fallback: np.ndarray, v: np.ndarray) -> tuple:
+    """MVDR weights ``(R + eps I)^-1 v / (v^H (R + eps I)^-1 v)`` from the factors of
+    :func:`loaded_factors`, by two triangular solves per bin (batched); delay-and-sum where a bin
+    falls back or the result is not finite. Returns ``(w, fallback)`` as :func:`mvdr_weights`."""
+    v = np.asarray(v, np.complex128)
+    das = v / np.sum(np.abs(v) ** 2, axis=2, keepdims=True)
+    rhs = np.transpose(v, (0, 2, 1))  # (bins, M, beams)
+    y = np.linalg.solve(lower, rhs)  # L y = v (a triangular system; no inverse is formed)
+    x = np.linalg.solve(np.conj(np.transpose(lower, (0, 2, 1))), y)  # L^H x = y
+    den = np.einsum("kmb,kbm->kb", x, np.conj(v))  # v^H (R + eps I)^-1 v, real and positive
+    bad = fallback[:, None] | ~np.isfinite(den) | ~(den.real > 0)
+    w = np.transpose(x, (0, 2, 1)) / np.where(bad, 1.0, den.real)[:, :, None]
+    w = np.where(bad[:, :, None], das, w)
+    return w, fallback | bad.any(axis=1)
 
 
 def mvdr_weights(r: np.ndarray, v: np.ndarray, loading_db: float) -> tuple:
@@ -77,34 +124,13 @@ def mvdr_weights(r: np.ndarray, v: np.ndarray, loading_db: float) -> tuple:
         Bins given delay-and-sum weights (``r`` not finite, or not positive
         definite even loaded).
     """
-    r = np.asarray(r, np.complex128)
-    v = np.asarray(v, np.complex128)
-    n_bins, n_beams, m = v.shape
+    r = np.asarray(r)
+    v = np.asarray(v)
+    n_bins, _, m = v.shape
     if r.shape != (n_bins, m, m):
         raise ValueError(f"r has shape {r.shape}, expected ({n_bins}, {m}, {m}) for steering of shape {v.shape}")
-    das = v / np.sum(np.abs(v) ** 2, axis=2, keepdims=True)
-    w = das.copy()
-    fallback = np.zeros(n_bins, bool)
-    finite = np.isfinite(r).all(axis=(1, 2))
-    fallback |= ~finite
-    scale = 10.0 ** (loading_db / 10.0) if math.isfinite(loading_db) else 0.0
-    eps = np.zeros(n_bins)
-    if finite.any():
-        eps[finite] = scale * noise_power(r[finite])
-    eye = np.eye(m)
-    for k in np.nonzero(finite)[0]:
-        try:
-            factor = cho_factor(r[k] + eps[k] * eye, lower=True, check_finite=False)
-        except LinAlgError:
-            fallback[k] = True
-            continue
-        x = cho_solve(factor, v[k].T, check_finite=False)  # (M, beams): (R + eps I)^-1 v
-        den = np.einsum("mb,bm->b", x, v[k].conj())  # v^H x, real and positive in exact arithmetic
-        if not (np.all(np.isfinite(den)) and np.all(den.real > 0)):
-            fallback[k] = True
-            continue
-        w[k] = (x / den.real).T
-    return w, fallback
+    lower, fallback = loaded_factors(r, loading_db)
+    return weights_from_factors(lower, fallback, v)
 
 
 def white_noise_gain(w: np.ndarray, v: np.ndarray) -> np.ndarray:

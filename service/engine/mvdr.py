@@ -25,7 +25,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .adaptive import CrossSpectra, mvdr_weights
+from .adaptive import CrossSpectra, loaded_factors, weights_from_factors
 from .beamformer import Beamformer, BlockResult, _concat_results
 
 
@@ -114,17 +114,18 @@ class AdaptiveBeamformer:
 
     def _steering(self):
         """Delay-and-sum steering with the adaptive bins replaced by the MVDR weights' (see the module notes)."""
-        r = self.cross.r
+        # one loaded factor per adaptive bin serves both the power and the audio beams
+        lower, fallback = loaded_factors(self.cross.r, self.settings.loading_db)
         power_h = self._p_h.copy()
         if len(self._p_sel):
-            w, fallback = mvdr_weights(r[self._p_in_a], self._p_a, self.settings.loading_db)
+            w, fb = weights_from_factors(lower[self._p_in_a], fallback[self._p_in_a], self._p_a)
             power_h[self._p_sel] = self._p_g[..., None] * np.conj(w)
-            self.fallback_bins += int(fallback.sum())
+            self.fallback_bins += int(fb.sum())
         audio_h = None
         if self._audio:
             audio_h = self._a_h.copy()
-            w, fallback = mvdr_weights(r, self._a_a, self.settings.loading_db)
+            w, fb = weights_from_factors(lower, fallback, self._a_a)
             audio_h[self.bins] = self._a_g[..., None] * np.conj(w)
-            self.fallback_bins += int(fallback.sum())
+            self.fallback_bins += int(fb.sum())
         self.updates += 1
         return self._base.with_steering(power_h, audio_h)
