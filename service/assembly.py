@@ -11,6 +11,7 @@ from .config import Config
 from .engine import cost, diagnostics
 from .engine.beamformer import Beamformer
 from .engine.detect import DetectionStage
+from .engine.mvdr import engine_for
 from .engine.directions import unit_vectors
 from .engine.scene import Scene
 from .engine.shading import shading_weights
@@ -22,10 +23,14 @@ def make_beamformer(config: Config, beams=None, threads: int = 1, live: bool = F
     the next (they spin for two block periods), so that a block never waits for one to wake."""
     inp = config.input
     spin_s = min(2.0 * inp.block_frames / inp.samplerate_hz, 1.0) if live else 0.0003
+    beams = beams or config.beams
+
+    def make(pair_rows: bool) -> Beamformer:
+        return Beamformer(config.geometry, config.sound_speed_mps, inp.samplerate_hz, inp.block_frames, beams,
+                          config.power_batch_blocks, threads=threads, spin_s=spin_s, pair_rows=pair_rows)
+
     try:
-        return Beamformer(config.geometry, config.sound_speed_mps, inp.samplerate_hz,
-                          inp.block_frames, beams or config.beams, config.power_batch_blocks,
-                          threads=threads, spin_s=spin_s)
+        return engine_for(make, beams)  # delay-and-sum, or MVDR over it ([beams] method)
     except ValueError as exc:
         raise UsageError(f"{config.where}: [beams] {exc}") from None
 
@@ -39,8 +44,10 @@ def make_detection(config: Config, engine: Beamformer, settings=None) -> Detecti
     width = diagnostics.beamwidth_deg(config.geometry.centred_positions_m, beam_weights(config, mid), mid,
                                       0.5 * (band[0] + band[1]), config.sound_speed_mps)
     lobe = width if np.isfinite(width) else 10.0
+    # Adaptive beams' power does not follow the gamma law: their threshold is measured (detect.py).
+    law = "measured" if beams.method == "mvdr" else "gamma"
     return DetectionStage(beams.power_deg, [ev.filter.taps for ev in engine.band_filters], engine.block_frames,
-                          engine.samplerate_hz, settings, lobe_deg=lobe)
+                          engine.samplerate_hz, settings, lobe_deg=lobe, law=law)
 
 
 def cost_model(config: Config, engine: Beamformer) -> cost.CostModel:

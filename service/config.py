@@ -24,7 +24,8 @@ from .tomlcheck import _REQUIRED, _Table
 
 from .engine import cost
 from .engine import directions as dirs
-from .engine.beamformer import MAX_THREADS, BeamSet
+from .engine.adaptive import AdaptiveSettings
+from .engine.beamformer import MAX_THREADS, METHODS, BeamSet
 from .engine.detect import DetectSettings
 from .engine.geometry import ArrayGeometry
 from .engine.medium import air_sound_speed_mps, mackenzie_out_of_range, mackenzie_sound_speed_mps
@@ -487,9 +488,21 @@ def _beams(t: _Table, fs: float):
     audio = _directions(t, "audio_deg", allow_empty=True, default=[])
     _admit_count(t, "audio_deg", 0, len(audio))
     batch = t.integer("power_batch_blocks", 1, low=1, high=16)
+    method = t.string("method", "das", METHODS)
+    adaptive = _adaptive(t.table("adaptive", {}), fs)
     t.done()
     return BeamSet(power, np.array(audio).reshape(-1, 2), shading, sidelobe, nbar, tuple(bands),
-                   transition), batch
+                   transition, method, adaptive), batch
+
+
+def _adaptive(t: _Table, fs: float) -> AdaptiveSettings:
+    """``[beams.adaptive]``: the MVDR settings (used with ``method = "mvdr"``)."""
+    average = t.number("average_s", 1.0, low=0.01, high=3600.0, unit="s")
+    loading = t.number("loading_db", 10.0, low=-60.0, high=100.0, unit="dB")
+    update = t.number("update_s", 0.25, low=0.01, high=3600.0, unit="s")
+    band = _band(t, "band_hz", fs) if t.has("band_hz") else None
+    t.done()
+    return AdaptiveSettings(average, loading, update, None if band is None else tuple(band))
 
 
 def _admit_count(t: _Table, name: str, n_power: int, n_audio: int = 0) -> None:

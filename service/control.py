@@ -78,6 +78,8 @@ def beams_as_request(beams) -> dict:
     }
     if beams.transition_hz is not None:
         out["transition_hz"] = beams.transition_hz
+    out["method"] = beams.method
+    out["adaptive"] = beams.adaptive.as_dict()
     return out
 
 

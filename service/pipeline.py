@@ -18,6 +18,7 @@ import numpy as np
 
 from .engine.beamformer import BeamSet
 from .assembly import make_beamformer, make_detection, summary
+from .engine.mvdr import engine_for
 from .tracking import TrackingThread
 
 log = logging.getLogger("beamtap.pipeline")
@@ -89,6 +90,8 @@ class Pipeline:
             "bulk_delay_samples": self.bulk_delay,
             "samplerate_hz": self.samplerate_hz,
             "array_kind": self.config.geometry.kind,
+            "method": beams.method,
+            "adaptive": beams.adaptive.as_dict() if beams.method == "mvdr" else None,
             # A line cannot tell a bearing from its mirror image across the line's axis: bearings
             # (beams, detections, tracks) are on 0-180°.
             "mirror_ambiguous": self.config.geometry.kind == "line",
@@ -101,6 +104,10 @@ class Pipeline:
         Returns the beam table id it will carry. Raises ``queue.Full`` if
         retargets pile up faster than blocks are processed.
         """
+        if beams.method == "mvdr" and self.engine.mirror_pair_rows:
+            raise ValueError("method mvdr needs one history row per sensor, and this service's engine holds "
+                             "mirror-pair rows (a symmetric array of 48 or more sensors): restart it with "
+                             "[beams] method = \"mvdr\" in its config")
         prepared = self.engine.prepare(beams)
         done = threading.Event()
         slot = {"beams": beams, "prepared": prepared, "done": done, "id": None, "cancelled": False}
@@ -169,6 +176,7 @@ class Pipeline:
             if slot["cancelled"]:
                 continue
             self._release(self.engine.apply(slot["prepared"]))
+            self.engine = engine_for(None, slot["beams"], current=self.engine)  # MVDR over it, or not
             # New beams: a new background and new tracks (the old ones end, said in the next message).
             self.tracking.new_stage(make_detection(self.config, self.engine, self.tracking.settings))
             self.beam_table_id += 1
@@ -291,6 +299,7 @@ class Pipeline:
             "publishing": ["power", "detections", "tracks"] + (["audio"] if len(self.engine.beams.audio_deg) else [])
             + (["raw"] if self.config.publish.raw else []),
             **self.tracking.status(),
+            "adaptive": self.engine.status() if getattr(self.engine, "method", "das") == "mvdr" else None,
         }
         if self.recorder is not None:
             out["record"] = self.recorder.status()

@@ -158,3 +158,128 @@ def test_two_sources_at_half_the_rayleigh_resolution_are_two_peaks_for_mvdr_one_
     assert len(peaks["das"]) == 1, peaks
     assert len(peaks["mvdr"]) == 2, peaks
     assert abs(min(peaks["mvdr"]) - min(az1, az2)) <= 1.0 and abs(max(peaks["mvdr"]) - max(az1, az2)) <= 1.0
+
+
+def _mixed(rng, n):
+    """Two broadband sources (80° and 100°, 10 dB apart) in white noise: a scene MVDR changes."""
+    s1, f = band_noise(rng, n, 1400.0, 2000.0)
+    s2, _ = band_noise(rng, n, 1400.0, 2000.0)
+    return plane_wave(80.0, s1, f) + 0.3 * plane_wave(100.0, s2, f) + 0.05 * rng.standard_normal((n, N))
+
+
+def test_block_sizes_agree_on_the_sources_and_the_floor_once_the_averages_settle():
+    """The same input with blocks of 512, 1024 and 2048: MVDR power on the two sources' beams and on
+    the noise floor far from them agrees within 0.5 dB once the averages settle (the issue's check,
+    on those beams). Between the sources it does not yet (measured 2026-12-05: up to 4.5 dB, the
+    frames of the three block sizes differ in length, and per-bin weights alias differently in
+    each; issue 22 stays open for it)."""
+    rng = np.random.default_rng(5)
+    n = 12 * 16384
+    x = _mixed(rng, n)
+    beams = BeamSet(fan(60.0, 120.0, 2.0), [], bands_hz=[(1400.0, 2000.0)])
+    levels = []
+    for block in (512, 1024, 2048):
+        eng = AdaptiveBeamformer(Beamformer(GEO, C, FS, block, beams, pair_rows=False),
+                                 AdaptiveSettings(average_s=4.0, update_s=0.25))
+        _, p = run(eng, x, block)
+        levels.append(10 * np.log10(np.mean(10 ** (p[len(p) // 2:, 0, :] / 10), axis=0)))
+    levels = np.array(levels)
+    for beam in (10, 20, 0, 29):  # the sources at 80° and 100°, the floor at 60° and 118°
+        assert np.ptp(levels[:, beam]) < 0.5, (beam, levels[:, beam])
+
+
+def test_retarget_at_any_block_position_keeps_going():
+    """A new beam set at a block boundary or inside a call, with MVDR on: the stream goes on, the
+    new beams' power settles to what a fresh MVDR engine on them gives (within 0.5 dB)."""
+    from beamtap.service.engine.mvdr import engine_for
+
+    rng = np.random.default_rng(8)
+    n = 6 * 16384
+    x = _mixed(rng, n).astype(np.float32)
+    first = BeamSet(fan(60.0, 120.0, 2.0), [[80.0, 0.0]], bands_hz=[(1400.0, 2000.0)], method="mvdr")
+    second = BeamSet(fan(70.0, 110.0, 1.0), [[100.0, 0.0], [85.0, 0.0]], bands_hz=[(1450.0, 1950.0)],
+                     method="mvdr")
+    fresh = AdaptiveBeamformer(Beamformer(GEO, C, FS, 1024, second, pair_rows=False), second.adaptive)
+    _, want = run(fresh, x)
+    want_db = 10 * np.log10(np.mean(10 ** (want[len(want) // 2:, 0, :] / 10), axis=0))
+    for at in (4096, 4096 + 300):
+        eng = engine_for(lambda pair_rows: Beamformer(GEO, C, FS, 1024, first, pair_rows=pair_rows), first)
+        eng.process(x[:at])
+        eng.apply(eng.prepare(second))
+        eng = engine_for(None, second, current=eng)
+        assert eng.method == "mvdr" and eng.beams.power_deg.shape == (41, 2)
+        audio, power = [], []
+        for i in range(at, n, 1024):
+            out = eng.process(x[i:i + 1024])
+            audio.append(out.audio)
+            power.append(out.power_db)
+        power = np.concatenate(power)
+        assert np.all(np.isfinite(np.concatenate(audio))) and np.concatenate(audio).shape[1] == 2
+        got_db = 10 * np.log10(np.mean(10 ** (power[len(power) // 2:, 0, :] / 10), axis=0))
+        assert np.max(np.abs(got_db - want_db)) < 0.5
+        # and back to delay-and-sum: the same engine, unwrapped
+        das = BeamSet(second.power_deg, second.audio_deg, bands_hz=second.bands_hz)
+        eng.apply(eng.prepare(das))
+        plain = engine_for(None, das, current=eng)
+        assert isinstance(plain, Beamformer) and plain.on_spectra is None
+        assert np.all(np.isfinite(plain.process(x[:2048]).audio))
+
+
+def test_method_and_adaptive_keys_are_checked(tmp_path):
+    import subprocess
+    import sys
+
+    base = ("[array]\nline = { count = 8, spacing_m = 0.1 }\n[medium]\nsound_speed_mps = 343.0\n[input]\n"
+            "samplerate_hz = 16000\n[beams]\nfan = { from_deg = 0.0, to_deg = 180.0, step_deg = 5.0 }\n"
+            "band_hz = [1000.0, 2000.0]\n")
+    for extra, word in (('method = "capon"', "method"), ('method = "mvdr"\nadaptive = { loading_db = "x" }',
+                                                          "loading_db"),
+                        ("adaptive = { band_hz = [2000.0, 100.0] }", "band_hz"), ("adaptive = { speed = 1 }", "speed"),
+                        ("adaptive = { update_s = 0.0 }", "update_s"), ("adaptive = { average_s = nan }", "average_s")):
+        cfg = tmp_path / "c.toml"
+        cfg.write_text(base + extra + "\n")
+        r = subprocess.run([sys.executable, "-m", "beamtap", "check", str(cfg)], capture_output=True, text=True,
+                           timeout=120)
+        assert r.returncode == 2 and word in r.stderr and len(r.stderr.strip().splitlines()) == 1, (extra, r.stderr)
+
+
+def test_the_service_switches_method_live_and_reports_it(tmp_path):
+    """`ctl beams` switches a running service to MVDR and back: the beam table says which, the
+    status reports the loading, update time, updates and fallbacks; a service whose history holds
+    mirror-pair rows refuses MVDR with a reason, and keeps running."""
+    import time
+
+    from beamtap.client import Controller, ServiceError, Subscriber
+
+    from conftest import line_config, running_service
+
+    cfg = line_config(input_extra="scene_noise_db = -40.0",
+                      scene=[{"azimuth_deg": 70.0, "signal": "noise", "band_hz": [200.0, 2000.0], "level_db": -24.0}])
+    with running_service(tmp_path, cfg) as svc, Controller(svc.control, timeout_s=20) as ctl:
+        reply = ctl.beams(set={"method": "mvdr", "adaptive": {"update_s": 0.1, "loading_db": 12.0}})
+        assert reply["beams"]["method"] == "mvdr"
+        deadline = time.monotonic() + 20
+        adaptive = None
+        while time.monotonic() < deadline:
+            adaptive = ctl.status().get("adaptive")
+            if adaptive and adaptive["weight_updates"] >= 3:
+                break
+            time.sleep(0.1)
+        assert adaptive["loading_db"] == 12.0 and adaptive["update_s"] == 0.1 and adaptive["weight_updates"] >= 3
+        assert "fallback_bins" in adaptive
+        with Subscriber(svc.publish, topics=["beams"], timeout_s=10) as sub:
+            table = sub.recv().header
+        assert table["method"] == "mvdr" and table["adaptive"]["loading_db"] == 12.0
+        ctl.beams(set={"method": "das"})
+        deadline = time.monotonic() + 20
+        while time.monotonic() < deadline and ctl.status().get("adaptive") is not None:
+            time.sleep(0.1)
+        assert ctl.status()["adaptive"] is None
+    big = line_config(count=64, spacing_m=0.5, input_extra="scene_noise_db = -40.0")
+    with running_service(tmp_path, big) as svc, Controller(svc.control, timeout_s=20) as ctl:
+        try:
+            ctl.beams(set={"method": "mvdr"})
+            raise AssertionError("a mirror-pair engine took MVDR beams")
+        except ServiceError as exc:
+            assert "mirror-pair" in str(exc) and "method" in str(exc)
+        assert ctl.status()["state"] == "running"

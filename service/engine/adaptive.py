@@ -35,8 +35,25 @@ Trans. ASSP 35(10), 1987 (white-noise gain and loading).
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
+
+
+@dataclass(frozen=True)
+class AdaptiveSettings:
+    """``[beams.adaptive]``: MVDR settings."""
+
+    average_s: float = 1.0  # cross-spectra averaging time constant, seconds
+    loading_db: float = 10.0  # diagonal loading over the estimated sensor noise per bin
+    update_s: float = 0.25  # how often the weights are recomputed, seconds
+    band_hz: tuple | None = None  # where R is estimated and weights adapt; None: the power bands' span
+
+    def as_dict(self) -> dict:
+        out = {"average_s": self.average_s, "loading_db": self.loading_db, "update_s": self.update_s}
+        if self.band_hz is not None:
+            out["band_hz"] = list(self.band_hz)
+        return out
 
 
 def noise_power(r: np.ndarray) -> np.ndarray:

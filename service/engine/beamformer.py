@@ -29,6 +29,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import cost, shading, steering
+from .adaptive import AdaptiveSettings
 from .basis import _Basis
 from .geometry import ArrayGeometry
 from .products import COMPILED_AVAILABLE, KERNELS_MISSING, _BeamProduct, _kernels, need
@@ -37,6 +38,8 @@ from .transform import cache_aligned, irfft_columns
 
 __all__ = ["COMPILED_AVAILABLE", "KERNELS_MISSING", "BeamSet", "Beamformer", "BlockResult", "EngineState", "sanitize"]
 
+#: Beamforming methods: delay-and-sum, minimum variance distortionless response.
+METHODS = ("das", "mvdr")
 #: Most threads one engine uses (the compiled team's limit).
 MAX_THREADS = 64
 #: Default audio crossfade after a retarget, seconds.
@@ -63,6 +66,12 @@ class BeamSet:
         Power bands, Hz; at least one.
     transition_hz : float or None
         Band filter transition width (None: automatic).
+    method : {"das", "mvdr"}
+        Delay-and-sum (this engine), or minimum-variance beams formed by
+        :class:`~beamtap.service.engine.mvdr.AdaptiveBeamformer` over it
+        (:func:`~beamtap.service.engine.mvdr.engine_for` builds either).
+    adaptive : AdaptiveSettings
+        The MVDR settings (used with ``method="mvdr"``).
     """
 
     power_deg: np.ndarray
@@ -72,6 +81,8 @@ class BeamSet:
     nbar: int = 4
     bands_hz: tuple = ((500.0, 1500.0),)
     transition_hz: float | None = None
+    method: str = "das"
+    adaptive: AdaptiveSettings = field(default_factory=AdaptiveSettings)
 
     def __post_init__(self):
         for name in ("power_deg", "audio_deg"):
@@ -84,6 +95,8 @@ class BeamSet:
             raise ValueError("bands_hz: at least one band is needed")
         if self.shading not in shading.SHADINGS:
             raise ValueError(f"shading={self.shading!r}: expected one of {', '.join(shading.SHADINGS)}")
+        if self.method not in METHODS:
+            raise ValueError(f"method={self.method!r}: expected one of {', '.join(METHODS)}")
 
 
 @dataclass(frozen=True)

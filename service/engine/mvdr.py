@@ -21,22 +21,12 @@ and their tests (tests/test_mvdr.py).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 
-from .adaptive import CrossSpectra, loaded_factors, weights_from_factors
+from .adaptive import AdaptiveSettings, CrossSpectra, loaded_factors, weights_from_factors
 from .beamformer import Beamformer, BlockResult, _concat_results
 
-
-@dataclass(frozen=True)
-class AdaptiveSettings:
-    """``[beams.adaptive]``: MVDR settings."""
-
-    average_s: float = 1.0  # cross-spectra averaging time constant
-    loading_db: float = 10.0  # diagonal loading over the estimated sensor noise per bin
-    update_s: float = 0.25  # how often the weights are recomputed
-    band_hz: tuple | None = None  # where R is estimated and weights adapt; None: the power bands' span
+__all__ = ["AdaptiveBeamformer", "AdaptiveSettings", "engine_for"]
 
 
 class AdaptiveBeamformer:
@@ -58,8 +48,40 @@ class AdaptiveBeamformer:
 
     def __init__(self, engine: Beamformer, settings: AdaptiveSettings = AdaptiveSettings()):
         if engine.mirror_pair_rows:
-            raise ValueError("engine: build it with pair_rows=False (adaptive weights need one row per sensor)")
+            raise ValueError("method mvdr needs one history row per sensor; this engine holds mirror-pair rows "
+                             "(start the service with [beams] method = \"mvdr\" for this array)")
         self.engine, self.settings = engine, settings
+        self.fallback_bins = 0
+        self.updates = 0
+        self.cross, self._cross_bins = None, None
+        self.rebuild()
+
+    def __getattr__(self, name):
+        # everything else is the engine's (bulk delay, beams, flush, reset, prepare, apply, ...)
+        if name == "engine":  # not set yet (copying, unpickling): no recursion
+            raise AttributeError(name)
+        return getattr(self.engine, name)
+
+    @property
+    def method(self) -> str:
+        return "mvdr"
+
+    def __enter__(self) -> "AdaptiveBeamformer":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.engine.close()
+
+    def status(self) -> dict:
+        """What the service reports of the adaptive stage."""
+        return {"method": "mvdr", **self.settings.as_dict(), "weight_updates": self.updates,
+                "fallback_bins": self.fallback_bins, "adaptive_bins": int(len(self.bins))}
+
+    def rebuild(self) -> None:
+        """Set up for the engine's current (delay-and-sum) steering: after a retarget, the new beams'
+        steering, manifolds and responses; the averaged cross-spectra are kept when the adaptive
+        bins are the same (the scene has not changed), else started afresh."""
+        engine, settings = self.engine, self.settings
         base, n_fft = engine._steer
         self._base, self._n_fft = base, n_fft
         fs = engine.samplerate_hz
@@ -71,7 +93,10 @@ class AdaptiveBeamformer:
         if not len(self.bins):
             raise ValueError(f"band_hz=({lo:g}, {hi:g}): no FFT bin in it at {fs:g} Hz and {n_fft} points")
         n_sensors = engine._basis.n_rows
-        self.cross = CrossSpectra(len(self.bins), n_sensors, settings.average_s, engine.block_frames / fs)
+        if self.cross is None or self.cross.r.shape[0] != len(self.bins) or self._cross_bins is None or \
+                not np.array_equal(self._cross_bins, self.bins):
+            self.cross = CrossSpectra(len(self.bins), n_sensors, settings.average_s, engine.block_frames / fs)
+            self._cross_bins = self.bins
         beams = base.beams
         # Power: the power bins that adapt, their delay-and-sum steering, manifold and response.
         p_bins = base.power_bins
@@ -88,9 +113,6 @@ class AdaptiveBeamformer:
             self._a_g = np.einsum("kbm,kbm->kb", self._a_h[self.bins], self._a_a)
         self._update_frames = max(1, int(round(settings.update_s * fs)))
         self._since = 0
-        self._due = False
-        self.fallback_bins = 0
-        self.updates = 0
         engine.on_spectra = self._observe
 
     def _observe(self, spec: np.ndarray) -> None:
@@ -129,3 +151,26 @@ class AdaptiveBeamformer:
             self.fallback_bins += int(fb.sum())
         self.updates += 1
         return self._base.with_steering(power_h, audio_h)
+
+
+def engine_for(make, beams, current=None):
+    """The engine for ``beams``: a :class:`Beamformer`, wrapped for ``method="mvdr"``.
+
+    ``make(pair_rows)`` builds a new :class:`Beamformer` for ``beams``. With
+    ``current`` (an engine already running another beam set) nothing is
+    built: the caller retargets ``current`` and this returns it, wrapped or
+    unwrapped as ``beams.method`` asks (the history, and so the stream, goes
+    on). A running engine whose history holds mirror-pair rows cannot take
+    MVDR beams: :class:`ValueError` says so.
+    """
+    if current is None:
+        engine = make(beams.method != "mvdr")
+        return AdaptiveBeamformer(engine, beams.adaptive) if beams.method == "mvdr" else engine
+    base = current.engine if isinstance(current, AdaptiveBeamformer) else current
+    if beams.method != "mvdr":
+        base.on_spectra = None
+        return base
+    if isinstance(current, AdaptiveBeamformer) and current.settings == beams.adaptive:
+        current.rebuild()
+        return current
+    return AdaptiveBeamformer(base, beams.adaptive)
