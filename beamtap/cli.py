@@ -74,6 +74,18 @@ def _threads(text: str) -> int:
     return n
 
 
+def _interferer(text: str) -> tuple:
+    """``--interferer AZ,DB``."""
+    try:
+        az, level = (float(p) for p in text.split(","))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"got {text!r}, expected AZ,DB (azimuth in degrees, level in dB)") from None
+    if not (math.isfinite(az) and math.isfinite(level) and -360.0 <= az <= 360.0 and -100.0 <= level <= 100.0):
+        raise argparse.ArgumentTypeError(f"got {text!r}, expected azimuth from -360 to 360° and level from "
+                                         "-100 to 100 dB")
+    return (az, level)
+
+
 def _look(text: str):
     try:
         parts = [float(p) for p in text.split(",")]
@@ -148,8 +160,9 @@ def cmd_pattern(args):
                          f"(half the sample rate of {config.where})")
     outputs.check_file(args.out, args.overwrite)
     look = args.look or ((90.0, 0.0) if config.geometry.kind == "line" else (0.0, 0.0))
-    table = offline.pattern(config, args.freq, look, args.out)
-    print(f"wrote {args.out}: {len(table)} directions, look {look[0]:g}°/{look[1]:g}° at {args.freq:g} Hz")
+    table = offline.pattern(config, args.freq, look, args.out, interferers=args.interferer or ())
+    adaptive = " (delay-and-sum and MVDR)" if args.interferer else ""
+    print(f"wrote {args.out}: {len(table)} directions, look {look[0]:g}°/{look[1]:g}° at {args.freq:g} Hz{adaptive}")
 
 
 def cmd_serve(args):
@@ -311,6 +324,9 @@ def build_parser() -> argparse.ArgumentParser:
                    "(default: broadside for a line, 0° otherwise)")
     p.add_argument("--out", required=True, help="output .csv (or .png with the plot extra)")
     p.add_argument("--overwrite", action="store_true", help="replace outputs that already exist")
+    p.add_argument("--interferer", type=_interferer, action="append", metavar="AZ,DB",
+                   help="a plane-wave interferer at azimuth AZ, DB above each sensor's noise (repeatable): "
+                        "adds the MVDR response for that scene beside delay-and-sum's")
     p = _add(sub, "serve", cmd_serve, "run the live beamformer service (publishes power and audio over ZeroMQ)")
     p.add_argument("--config", default=None, help="config file (default: the built-in demo scene)")
     p.add_argument("--publish", default=None, metavar="ENDPOINT", help="override [publish] endpoint")
