@@ -23,10 +23,13 @@ from __future__ import annotations
 
 import numpy as np
 
-from .adaptive import AdaptiveSettings, CrossSpectra, loaded_factors, weights_from_factors
+from .adaptive import AdaptiveSettings, CrossSpectra, loaded_factors, noise_power, weights_from_factors
 from .beamformer import Beamformer, BlockResult, _concat_results
 
 __all__ = ["AdaptiveBeamformer", "AdaptiveSettings", "engine_for"]
+
+#: Weight updates between two estimates of the noise floor under the loading.
+_NOISE_EVERY = 4
 
 
 class AdaptiveBeamformer:
@@ -54,6 +57,7 @@ class AdaptiveBeamformer:
         self.fallback_bins = 0
         self.updates = 0
         self.cross, self._cross_bins = None, None
+        self._noise = None
         self.rebuild()
 
     def __getattr__(self, name):
@@ -97,6 +101,7 @@ class AdaptiveBeamformer:
                 not np.array_equal(self._cross_bins, self.bins):
             self.cross = CrossSpectra(len(self.bins), n_sensors, settings.average_s, engine.block_frames / fs)
             self._cross_bins = self.bins
+            self._noise = None
         beams = base.beams
         # Power: the power bins that adapt, their delay-and-sum steering, manifold and response.
         p_bins = base.power_bins
@@ -136,8 +141,15 @@ class AdaptiveBeamformer:
 
     def _steering(self):
         """Delay-and-sum steering with the adaptive bins replaced by the MVDR weights' (see the module notes)."""
-        # one loaded factor per adaptive bin serves both the power and the audio beams
-        lower, fallback = loaded_factors(self.cross.r, self.settings.loading_db)
+        # one loaded factor per adaptive bin serves both the power and the audio beams; the noise
+        # floor under the loading (eigenvalues, the costliest step for many sensors) moves slowly:
+        # it is estimated at every fourth update
+        r = self.cross.r
+        if self._noise is None or self.updates % _NOISE_EVERY == 0:
+            finite = np.isfinite(r).all(axis=(1, 2))
+            self._noise = np.zeros(len(r))
+            self._noise[finite] = noise_power(r[finite])
+        lower, fallback = loaded_factors(r, self.settings.loading_db, self._noise)
         power_h = self._p_h.copy()
         if len(self._p_sel):
             w, fb = weights_from_factors(lower[self._p_in_a], fallback[self._p_in_a], self._p_a)
