@@ -77,8 +77,10 @@ def loaded_factors(r: np.ndarray, loading_db: float, noise: np.ndarray | None = 
 
     Returns
     -------
-    lower : ndarray (bins, M, M), complex
-        ``L`` with ``L L^H = R + eps I`` (identity where the bin falls back).
+    inverse : ndarray (bins, M, M), complex
+        ``L^-1`` of the factor ``L L^H = R + eps I``, by forward substitution
+        on the identity (the triangular factor's inverse, never ``R``'s);
+        identity where the bin falls back.
     fallback : ndarray (bins,), bool
         Bins whose matrix is not finite or not positive definite even loaded.
     """
@@ -101,21 +103,18 @@ def loaded_factors(r: np.ndarray, loading_db: float, noise: np.ndarray | None = 
                 lower[k] = np.linalg.cholesky(loaded[k])
             except np.linalg.LinAlgError:
                 fallback[k] = True
-    return lower, fallback
+    return np.linalg.solve(lower, np.broadcast_to(np.eye(m, dtype=np.complex128), lower.shape)), fallback
 
 
-def weights_from_factors(lower: np.ndarray, fallback: np.ndarray, v: np.ndarray) -> tuple:
-    """MVDR weights ``(R + eps I)^-1 v / (v^H (R + eps I)^-1 v)`` from the factors of
-    :func:`loaded_factors`, by two triangular solves per bin (batched); delay-and-sum where a bin
-    falls back or the result is not finite. Returns ``(w, fallback)`` as :func:`mvdr_weights`."""
+def weights_from_factors(linv: np.ndarray, fallback: np.ndarray, v: np.ndarray) -> tuple:
+    """MVDR weights ``(R + eps I)^-1 v / (v^H (R + eps I)^-1 v)`` from the inverse factors of
+    :func:`loaded_factors`: ``z = L^-1 v`` and ``x = L^-H z`` are two batched products for any
+    number of beams, and ``v^H (R + eps I)^-1 v = |z|^2``, real and positive by construction;
+    delay-and-sum where a bin falls back or the result is not finite. Returns ``(w, fallback)``
+    as :func:`mvdr_weights`."""
     v = np.asarray(v, np.complex128)
     das = v / np.sum(np.abs(v) ** 2, axis=2, keepdims=True)
     rhs = np.transpose(v, (0, 2, 1))  # (bins, M, beams)
-    # Forward substitution on the identity gives the triangular factor's inverse (never R's): then
-    # z = L^-1 v and x = L^-H z = (R + eps I)^-1 v are two batched products for any number of beams,
-    # and v^H (R + eps I)^-1 v = |z|^2, real and positive by construction.
-    m = lower.shape[-1]
-    linv = np.linalg.solve(lower, np.broadcast_to(np.eye(m, dtype=np.complex128), lower.shape))
     z = linv @ rhs
     x = np.conj(np.transpose(linv, (0, 2, 1))) @ z
     den = np.sum(np.abs(z) ** 2, axis=1)  # (bins, beams)
