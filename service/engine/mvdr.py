@@ -107,15 +107,14 @@ class AdaptiveBeamformer:
         p_bins = base.power_bins
         self._p_sel = np.nonzero(np.isin(p_bins, self.bins))[0]
         self._p_in_a = np.searchsorted(self.bins, p_bins[self._p_sel])
-        self._p_h, _, _ = base.das_steering(beams.power_deg, p_bins)
+        h_das, _, _ = base.das_steering(beams.power_deg, p_bins[self._p_sel])
         self._p_a = base.manifold(beams.power_deg, p_bins[self._p_sel])
-        self._p_g = np.einsum("kbm,kbm->kb", self._p_h[self._p_sel], self._p_a)
+        self._p_g = np.einsum("kbm,kbm->kb", h_das, self._p_a)
         self._audio = len(beams.audio_deg) > 0
         if self._audio:
-            all_bins = np.arange(n_fft // 2 + 1)
-            self._a_h, _, _ = base.das_steering(beams.audio_deg, all_bins)
+            h_das, _, _ = base.das_steering(beams.audio_deg, self.bins)
             self._a_a = base.manifold(beams.audio_deg, self.bins)
-            self._a_g = np.einsum("kbm,kbm->kb", self._a_h[self.bins], self._a_a)
+            self._a_g = np.einsum("kbm,kbm->kb", h_das, self._a_a)
         self._update_frames = max(1, int(round(settings.update_s * fs)))
         self._since = 0
         engine.on_spectra = self._observe
@@ -150,19 +149,18 @@ class AdaptiveBeamformer:
             self._noise = np.zeros(len(r))
             self._noise[finite] = noise_power(r[finite])
         lower, fallback = loaded_factors(r, self.settings.loading_db, self._noise)
-        power_h = self._p_h.copy()
+        power_h = audio_h = None
         if len(self._p_sel):
             w, fb = weights_from_factors(lower[self._p_in_a], fallback[self._p_in_a], self._p_a)
-            power_h[self._p_sel] = self._p_g[..., None] * np.conj(w)
+            power_h = self._p_g[..., None] * np.conj(w)
             self.fallback_bins += int(fb.sum())
-        audio_h = None
         if self._audio:
-            audio_h = self._a_h.copy()
             w, fb = weights_from_factors(lower, fallback, self._a_a)
-            audio_h[self.bins] = self._a_g[..., None] * np.conj(w)
+            audio_h = self._a_g[..., None] * np.conj(w)
             self.fallback_bins += int(fb.sum())
         self.updates += 1
-        return self._base.with_steering(power_h, audio_h)
+        # the delay-and-sum steering with the adaptive bins overwritten (only those are repacked)
+        return self._base.with_bins(self._p_sel, power_h, self.bins if self._audio else None, audio_h)
 
 
 def engine_for(make, beams, current=None):

@@ -82,6 +82,26 @@ class _BeamProduct:
         else:
             self.h = [np.ascontiguousarray(q, dtype=np.float32 if symmetric else np.complex64)]
 
+    def with_bins(self, rel_bins: np.ndarray, h: np.ndarray) -> "_BeamProduct":
+        """A copy whose steering on ``rel_bins`` (indices into this product's bins) is ``h``
+        (len(rel_bins), beams, sensors), sensor rows only: the packed arrays are copied and those
+        bins overwritten, a fraction of the cost of packing every bin again."""
+        if self.real_form:
+            raise ValueError("with_bins: a mirror-pair (real) product cannot take complex steering")
+        out = object.__new__(_BeamProduct)
+        out.__dict__.update(self.__dict__)
+        out.h = [part.copy() for part in self.h]
+        if self.compiled:
+            formed = len(self.main_out)
+            groups = out.h[0].shape[0]
+            q = np.pad(h[:, self.main_out], ((0, 0), (0, groups * self.lanes - formed), (0, 0)))
+            q = q.reshape(len(rel_bins), groups, self.lanes, -1).transpose(1, 0, 3, 2)
+            out.h[0][:, rel_bins] = q.real
+            out.h[1][:, rel_bins] = q.imag
+        else:
+            out.h[0][rel_bins] = h
+        return out
+
     @property
     def nbytes(self) -> int:
         return sum(part.nbytes for part in self.h)

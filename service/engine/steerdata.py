@@ -83,6 +83,17 @@ class _Steering:
                                                               np.arange(n_fft // 2 + 1), compiled, team)
         return out
 
+    def with_bins(self, power_rel: np.ndarray, power_h: np.ndarray, audio_rel: np.ndarray | None,
+                  audio_h: np.ndarray | None) -> "_Steering":
+        """This steering with the given bins' steering replaced (power bins ``power_rel`` of the
+        power range, audio bins ``audio_rel`` of all bins), e.g. by adaptive weights."""
+        out = object.__new__(_Steering)
+        out.__dict__.update(self.__dict__)
+        out.power = self.power.with_bins(power_rel, power_h) if len(power_rel) else self.power
+        if self.audio is not None and audio_rel is not None and len(audio_rel):
+            out.audio = self.audio.with_bins(audio_rel, audio_h)
+        return out
+
     @property
     def nbytes(self) -> int:
         return self.power.nbytes + (0 if self.audio is None else self.audio.nbytes)
