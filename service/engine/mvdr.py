@@ -57,7 +57,6 @@ class AdaptiveBeamformer:
         self.fallback_bins = 0
         self.updates = 0
         self.cross, self._cross_bins = None, None
-        self._noise = None
         self.rebuild()
 
     def __getattr__(self, name):
@@ -101,12 +100,14 @@ class AdaptiveBeamformer:
                 not np.array_equal(self._cross_bins, self.bins):
             self.cross = CrossSpectra(len(self.bins), n_sensors, settings.average_s, engine.block_frames / fs)
             self._cross_bins = self.bins
-            self._noise = None
+            self._noise = np.full(len(self.bins), np.nan)  # per adaptive bin, estimated as updates go
         beams = base.beams
         # Power: the power bins that adapt, their delay-and-sum steering, manifold and response.
         p_bins = base.power_bins
         self._p_sel = np.nonzero(np.isin(p_bins, self.bins))[0]
         self._p_in_a = np.searchsorted(self.bins, p_bins[self._p_sel])
+        self._a_to_p = np.full(len(self.bins), -1)  # adaptive bin -> its row among the power bins that adapt
+        self._a_to_p[self._p_in_a] = np.arange(len(self._p_sel))
         h_das, _, _ = base.das_steering(beams.power_deg, p_bins[self._p_sel])
         self._p_a = base.manifold(beams.power_deg, p_bins[self._p_sel])
         self._p_g = np.einsum("kbm,kbm->kb", h_das, self._p_a)
@@ -117,6 +118,7 @@ class AdaptiveBeamformer:
             self._a_g = np.einsum("kbm,kbm->kb", h_das, self._a_a)
         self._update_frames = max(1, int(round(settings.update_s * fs)))
         self._since = 0
+        self._cycle = None  # an update in progress (see process)
         engine.on_spectra = self._observe
 
     def _observe(self, spec: np.ndarray) -> None:
@@ -124,13 +126,24 @@ class AdaptiveBeamformer:
         self.cross.update(spec[self.bins])
 
     def process(self, block: np.ndarray) -> BlockResult:
-        """Beamform one block (as :meth:`Beamformer.process`); new weights take effect at its end."""
+        """Beamform one block (as :meth:`Beamformer.process`).
+
+        Every ``update_s`` a weight update starts from a snapshot of the
+        averaged cross-spectra; its work is spread over the next blocks, a
+        slice of the adaptive bins per block (about half the update period's
+        blocks, so no block carries the whole of it), and the new steering
+        takes effect at the end of the block that finishes it.
+        """
         out = self.engine.process(block)
         self._since += len(block)
-        if self._since < self._update_frames:
+        if self._cycle is None and self._since >= self._update_frames:
+            self._since = 0
+            self._start_cycle()
+        if self._cycle is None or not self._work_slice():
             return out
-        self._since = 0
-        released = self.engine.apply((self._steering(), self._n_fft))
+        released = self.engine.apply((self._cycle.pop("steering"), self._n_fft))
+        self._cycle = None
+        self.updates += 1
         if not len(released.power_first_sample):
             return out
         rows = _concat_results([(out.power_db, out.power_first_sample),
@@ -138,29 +151,58 @@ class AdaptiveBeamformer:
                                out.power_db.shape[1], out.power_db.shape[2])
         return BlockResult(out.first_sample, out.audio, rows[0], rows[1], out.nan_count, out.clip_count)
 
-    def _steering(self):
-        """Delay-and-sum steering with the adaptive bins replaced by the MVDR weights' (see the module notes)."""
-        # one loaded factor per adaptive bin serves both the power and the audio beams; the noise
-        # floor under the loading (eigenvalues, the costliest step for many sensors) moves slowly:
-        # it is estimated at every fourth update
-        r = self.cross.r
-        if self._noise is None or self.updates % _NOISE_EVERY == 0:
-            finite = np.isfinite(r).all(axis=(1, 2))
-            self._noise = np.zeros(len(r))
-            self._noise[finite] = noise_power(r[finite])
-        lower, fallback = loaded_factors(r, self.settings.loading_db, self._noise)
-        power_h = audio_h = None
-        if len(self._p_sel):
-            w, fb = weights_from_factors(lower[self._p_in_a], fallback[self._p_in_a], self._p_a)
-            power_h = self._p_g[..., None] * np.conj(w)
+    def _start_cycle(self) -> None:
+        n_bins = len(self.bins)
+        blocks = max(1, self._update_frames // (2 * self.engine.block_frames))
+        self._cycle = {
+            "r": self.cross.r.copy(),  # the snapshot every slice of this update is solved from
+            "slices": np.array_split(np.arange(n_bins), min(n_bins, blocks)), "next": 0,
+            "power_h": np.empty((len(self._p_sel), self.engine.beams.power_deg.shape[0], self.cross.r.shape[1]),
+                                np.complex128),
+            "audio_h": np.empty((n_bins, len(self.engine.beams.audio_deg), self.cross.r.shape[1]), np.complex128)
+            if self._audio else None,
+        }
+
+    def _work_slice(self) -> bool:
+        """The next step of the update in progress; True when its steering is ready to apply.
+
+        Steps: a slice of the adaptive bins (its loaded factors and the power
+        and audio weights on it), then the power steering repacked, then the
+        audio steering, each in a block of its own."""
+        c = self._cycle
+        if c["next"] < len(c["slices"]):
+            self._solve_slice(c["slices"][c["next"]])
+            c["next"] += 1
+            return False
+        if "power" not in c:
+            c["power"] = self._base.with_bins(self._p_sel, c["power_h"], None, None)
+            return False
+        c["steering"] = c["power"].with_bins(np.zeros(0, int), None, self.bins if self._audio else None,
+                                             c["audio_h"])
+        return True
+
+    def _solve_slice(self, idx: np.ndarray) -> None:
+        """Loaded factors and weights on adaptive bins ``idx``; the noise floor under the loading
+        (eigenvalues, the costliest part for many sensors; it moves slowly) every fourth update."""
+        c = self._cycle
+        stale = np.isnan(self._noise[idx])
+        if self.updates % _NOISE_EVERY == 0 or stale.any():
+            finite = np.isfinite(c["r"][idx]).all(axis=(1, 2))
+            noise = np.zeros(len(idx))
+            noise[finite] = noise_power(c["r"][idx][finite])
+            self._noise[idx] = noise
+        linv, fallback = loaded_factors(c["r"][idx], self.settings.loading_db, self._noise[idx])
+        in_power = self._a_to_p[idx]
+        sel = np.nonzero(in_power >= 0)[0]
+        if len(sel):
+            rows = in_power[sel]
+            w, fb = weights_from_factors(linv[sel], fallback[sel], self._p_a[rows], np.complex64)
+            c["power_h"][rows] = self._p_g[rows][..., None] * np.conj(w)
             self.fallback_bins += int(fb.sum())
         if self._audio:
-            w, fb = weights_from_factors(lower, fallback, self._a_a)
-            audio_h = self._a_g[..., None] * np.conj(w)
+            w, fb = weights_from_factors(linv, fallback, self._a_a[idx], np.complex64)
+            c["audio_h"][idx] = self._a_g[idx][..., None] * np.conj(w)
             self.fallback_bins += int(fb.sum())
-        self.updates += 1
-        # the delay-and-sum steering with the adaptive bins overwritten (only those are repacked)
-        return self._base.with_bins(self._p_sel, power_h, self.bins if self._audio else None, audio_h)
 
 
 def engine_for(make, beams, current=None):

@@ -89,7 +89,8 @@ class _Steering:
         power range, audio bins ``audio_rel`` of all bins), e.g. by adaptive weights."""
         out = object.__new__(_Steering)
         out.__dict__.update(self.__dict__)
-        out.power = self.power.with_bins(power_rel, power_h) if len(power_rel) else self.power
+        out.power = self.power.with_bins(power_rel, power_h) if len(power_rel) and power_h is not None else \
+            self.power
         if self.audio is not None and audio_rel is not None and len(audio_rel):
             out.audio = self.audio.with_bins(audio_rel, audio_h)
         return out
