@@ -113,17 +113,18 @@ def weights_from_factors(linv: np.ndarray, fallback: np.ndarray, v: np.ndarray, 
     delay-and-sum where a bin falls back or the result is not finite. Returns ``(w, fallback)``
     as :func:`mvdr_weights`. ``dtype`` complex64 halves the time of the products (the streaming
     engine applies the weights in single precision anyway)."""
-    v = np.asarray(v, np.complex128)
-    das = v / np.sum(np.abs(v) ** 2, axis=2, keepdims=True)
+    v = np.asarray(v)
     rhs = np.transpose(v, (0, 2, 1)).astype(dtype)  # (bins, M, beams)
     linv = linv.astype(dtype, copy=False)
     z = linv @ rhs
     x = np.conj(np.transpose(linv, (0, 2, 1))) @ z
-    den = np.sum(np.abs(z) ** 2, axis=1)  # (bins, beams)
-    bad = fallback[:, None] | ~np.isfinite(den) | ~(den > 0)
-    w = np.transpose(x, (0, 2, 1)) / np.where(bad, 1.0, den)[:, :, None]
-    w = np.where(bad[:, :, None], das, w)
-    return w, fallback | bad.any(axis=1)
+    den = np.sum(z.real ** 2 + z.imag ** 2, axis=1)  # (bins, beams)
+    good = np.isfinite(den) & (den > 0) & ~fallback[:, None]
+    w = np.transpose(x / np.where(good, den, 1.0)[:, None, :], (0, 2, 1))
+    if not good.all():  # delay-and-sum where the bin fell back or the solve went wrong
+        das = v / np.sum(np.abs(v) ** 2, axis=2, keepdims=True)
+        w = np.where(good[:, :, None], w, das)
+    return w, fallback | ~good.all(axis=1)
 
 
 def mvdr_weights(r: np.ndarray, v: np.ndarray, loading_db: float) -> tuple:
