@@ -310,3 +310,39 @@ def test_pattern_draws_the_adaptive_response_for_a_described_scene(tmp_path):
         r = subprocess.run([sys.executable, "-m", "beamtap", "pattern", "--freq", "1500", "--interferer", bad,
                             "--out", str(tmp_path / "q.csv")], capture_output=True, text=True, timeout=120)
         assert r.returncode == 2 and "--interferer" in r.stderr and "Traceback" not in r.stderr
+
+
+def test_hostile_input_and_requests_do_not_break_adaptive_beams(tmp_path):
+    """NaN, infinities, silence and full-scale junk through MVDR beams: outputs stay finite, the
+    engine goes on; wrong types and values for the method and its settings in a control request
+    get one-line error replies and leave the service as it was."""
+    rng = np.random.default_rng(4)
+    beams = BeamSet(fan(60.0, 120.0, 5.0), [[90.0, 0.0]], bands_hz=[(1400.0, 2000.0)])
+    eng = AdaptiveBeamformer(Beamformer(GEO, C, FS, 512, beams, pair_rows=False),
+                             AdaptiveSettings(average_s=0.2, update_s=0.05))
+    x = (0.1 * rng.standard_normal((512 * 40, N))).astype(np.float32)
+    x[512 * 3:512 * 4] = np.nan
+    x[512 * 6, :] = np.inf
+    x[512 * 10:512 * 20] = 0.0  # silence: singular cross-spectra
+    x[512 * 25:512 * 26] = 1e30
+    audio, power = run(eng, x, 512)
+    assert np.all(np.isfinite(audio)) and np.all(np.isfinite(power))
+    assert eng.updates > 10
+
+    from beamtap.client import Controller, ServiceError
+
+    from conftest import line_config, running_service
+
+    with running_service(tmp_path, line_config(input_extra="scene_noise_db = -40.0")) as svc, \
+            Controller(svc.control, timeout_s=20) as ctl:
+        for bad, word in (({"method": 3}, "method"), ({"method": "music"}, "method"),
+                          ({"adaptive": {"loading_db": None}}, "loading_db"),
+                          ({"adaptive": {"average_s": -1}}, "average_s"), ({"adaptive": [1, 2]}, "adaptive"),
+                          ({"adaptive": {"band_hz": [1e9, 2e9]}}, "band_hz"),
+                          ({"adaptive": {"update_s": float("inf")}}, "update_s")):
+            try:
+                ctl.beams(set=bad)
+                raise AssertionError(f"accepted {bad}")
+            except ServiceError as exc:
+                assert word in str(exc) and "\n" not in str(exc)
+        assert ctl.beams()["beams"]["method"] == "das" and ctl.status()["state"] == "running"

@@ -38,6 +38,7 @@ from .transform import cache_aligned, irfft_columns
 
 __all__ = ["COMPILED_AVAILABLE", "KERNELS_MISSING", "BeamSet", "Beamformer", "BlockResult", "EngineState", "sanitize"]
 
+_FLOAT32_MAX = float(np.finfo(np.float32).max)
 #: Beamforming methods: delay-and-sum, minimum variance distortionless response.
 METHODS = ("das", "mvdr")
 #: Most threads one engine uses (the compiled team's limit).
@@ -541,6 +542,9 @@ class Beamformer:
         for i, ev in enumerate(steer.bands):
             lo = int(ev.bins[0]) - steer.k1
             ms = ev.mean_square_in(y, lo, self.compiled, self._team)
+            # Input far beyond full scale (counted as clipped) can overflow float32 power: such a row
+            # reads the largest float32 level (385 dB) rather than infinity.
+            np.nan_to_num(ms, copy=False, nan=_FLOAT32_MAX, posinf=_FLOAT32_MAX)
             np.maximum(ms, 1e-30, out=ms)
             np.log10(ms, out=ms)
             ms *= 10.0
