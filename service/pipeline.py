@@ -56,6 +56,7 @@ class Pipeline:
         self.beam_table_id = 1
         self.beam_table = self._beam_table(config.beams)
         self._retargets: queue.Queue = queue.Queue(maxsize=4)
+        self._deferred = None  # a retarget waiting for a crossfade to end
         self._stop = threading.Event()
         self._thread = None
         # Wall time and this thread's CPU time per block, the last 1024 blocks: when the first is
@@ -104,13 +105,14 @@ class Pipeline:
         Returns the beam table id it will carry. Raises ``queue.Full`` if
         retargets pile up faster than blocks are processed.
         """
-        if beams.method == "mvdr" and self.engine.mirror_pair_rows:
-            raise ValueError("method mvdr needs one history row per sensor, and this service's engine holds "
-                             "mirror-pair rows (a symmetric array of 48 or more sensors): restart it with "
-                             "[beams] method = \"mvdr\" in its config")
-        prepared = self.engine.prepare(beams)
         done = threading.Event()
-        slot = {"beams": beams, "prepared": prepared, "done": done, "id": None, "cancelled": False}
+        slot = {"beams": beams, "done": done, "id": None, "cancelled": False}
+        if beams.method == "mvdr" and self.engine.mirror_pair_rows:
+            # Adaptive beams need one history row per sensor: a new engine with that layout takes
+            # the stream over at the block boundary (its history from this one's, exactly).
+            slot["engine"] = make_beamformer(self.config, beams, threads=self.engine.threads, live=True)
+        else:
+            slot["prepared"] = self.engine.prepare(beams)
         self._retargets.put(slot, timeout=timeout)
         if not done.wait(timeout):
             slot["cancelled"] = True  # the caller is told it failed, so it must not happen later
@@ -169,14 +171,27 @@ class Pipeline:
 
     def _apply_retargets(self):
         while True:
-            try:
-                slot = self._retargets.get_nowait()
-            except queue.Empty:
-                return
+            if self._deferred is not None:
+                slot, self._deferred = self._deferred, None
+            else:
+                try:
+                    slot = self._retargets.get_nowait()
+                except queue.Empty:
+                    return
             if slot["cancelled"]:
                 continue
-            self._release(self.engine.apply(slot["prepared"]))
-            self.engine = engine_for(None, slot["beams"], current=self.engine)  # MVDR over it, or not
+            if "engine" in slot:
+                if self.engine._fade_from is not None:  # mid-crossfade: take over a block later
+                    self._deferred = slot
+                    return
+                self._release(self.engine.flush())
+                new = slot["engine"]
+                new.engine.take_over(self.engine)  # a mirror-pair engine is delay-and-sum: a plain one
+                self.engine.close()
+                self.engine = new
+            else:
+                self._release(self.engine.apply(slot["prepared"]))
+                self.engine = engine_for(None, slot["beams"], current=self.engine)  # MVDR over it, or not
             # New beams: a new background and new tracks (the old ones end, said in the next message).
             self.tracking.new_stage(make_detection(self.config, self.engine, self.tracking.settings))
             self.beam_table_id += 1

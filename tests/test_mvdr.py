@@ -246,7 +246,7 @@ def test_method_and_adaptive_keys_are_checked(tmp_path):
 def test_the_service_switches_method_live_and_reports_it(tmp_path):
     """`ctl beams` switches a running service to MVDR and back: the beam table says which, the
     status reports the loading, update time, updates and fallbacks; a service whose history holds
-    mirror-pair rows refuses MVDR with a reason, and keeps running."""
+    mirror-pair rows switches too (a sensor-row engine takes the stream over), without a gap."""
     import time
 
     from beamtap.client import Controller, ServiceError, Subscriber
@@ -276,12 +276,18 @@ def test_the_service_switches_method_live_and_reports_it(tmp_path):
             time.sleep(0.1)
         assert ctl.status()["adaptive"] is None
     big = line_config(count=64, spacing_m=0.5, input_extra="scene_noise_db = -40.0")
-    with running_service(tmp_path, big) as svc, Controller(svc.control, timeout_s=20) as ctl:
-        try:
+    with running_service(tmp_path, big) as svc, Controller(svc.control, timeout_s=30) as ctl:
+        # A symmetric 64-sensor line runs on mirror-pair rows; MVDR gets an engine with sensor rows
+        # that takes the stream over, with no gap.
+        with Subscriber(svc.publish, topics=["audio", "power"], timeout_s=10) as sub:
             ctl.beams(set={"method": "mvdr"})
-            raise AssertionError("a mirror-pair engine took MVDR beams")
-        except ServiceError as exc:
-            assert "mirror-pair" in str(exc) and "method" in str(exc)
+            deadline = time.monotonic() + 20
+            while time.monotonic() < deadline and not (ctl.status().get("adaptive") or {}).get("weight_updates"):
+                time.sleep(0.1)
+            frames = [sub.recv() for _ in range(40)]
+        assert ctl.status()["adaptive"]["weight_updates"] >= 1
+        assert not any(f.gap for f in frames) and ctl.status()["gaps"] == 0
+        assert all(np.all(np.isfinite(f.data)) for f in frames)
         assert ctl.status()["state"] == "running"
 
 
@@ -346,3 +352,25 @@ def test_hostile_input_and_requests_do_not_break_adaptive_beams(tmp_path):
             except ServiceError as exc:
                 assert word in str(exc) and "\n" not in str(exc)
         assert ctl.beams()["beams"]["method"] == "das" and ctl.status()["state"] == "running"
+
+
+def test_a_sensor_row_engine_takes_over_a_mirror_pair_stream_exactly():
+    """The mirror-pair rows' history turned back into sensor rows (x_a = (s + d) / 2, x_b = (s - d) / 2)
+    and handed to a sensor-row engine: its delay-and-sum output continues the pair engine's own,
+    to float32 rounding (the two layouts form the same sums)."""
+    geo = ArrayGeometry.line(64, 0.5)
+    beams = BeamSet(fan(0.0, 180.0, 3.0), [[70.0, 0.0]], bands_hz=[(300.0, 1400.0)])
+    rng = np.random.default_rng(9)
+    x = (0.1 * rng.standard_normal((1024 * 12, 64))).astype(np.float32)
+    pairs = Beamformer(geo, 1500.0, 48000.0, 1024, beams)
+    assert pairs.mirror_pair_rows
+    rows = Beamformer(geo, 1500.0, 48000.0, 1024, beams, pair_rows=False)
+    ref = Beamformer(geo, 1500.0, 48000.0, 1024, beams)
+    pairs.process(x[:1024 * 6])
+    pairs.flush()
+    rows.take_over(pairs)
+    ref.process(x[:1024 * 6])
+    ref.flush()
+    a, b = rows.process(x[1024 * 6:]), ref.process(x[1024 * 6:])
+    np.testing.assert_allclose(a.audio, b.audio, atol=2e-6)
+    np.testing.assert_allclose(a.power_db, b.power_db, atol=1e-3)

@@ -67,6 +67,21 @@ class _Basis:
             sums[:, self._centre] *= 0.5
         np.subtract(x[:, self._da], x[:, self._db], out=out[:, self.n_sums:])
 
+    def to_sensors(self, rows: np.ndarray) -> np.ndarray:
+        """History rows (frames, n_rows) back to the active sensors' signals (frames, sensors): the
+        inverse of :meth:`write` (``x_a = (s + d) / 2``, ``x_b = (s - d) / 2``; a centre sensor's row
+        is its signal)."""
+        if self.pairs is None:
+            return np.array(rows)
+        pa, pb = self.pairs
+        two = pa != pb
+        s, d = rows[:, :self.n_sums], rows[:, self.n_sums:]
+        out = np.empty((len(rows), len(pa) + int(two.sum())), rows.dtype)
+        out[:, pa[two]] = 0.5 * (s[:, two] + d)
+        out[:, pb[two]] = 0.5 * (s[:, two] - d)
+        out[:, pa[~two]] = s[:, ~two]
+        return out
+
     def transform(self, h: np.ndarray) -> np.ndarray:
         """Steering (..., sensors) on sensor signals -> the same sum on the rows."""
         if self.pairs is None:

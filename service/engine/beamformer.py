@@ -329,6 +329,28 @@ class Beamformer:
         self._pending_start = list(state.pending_start)
         self._pending_spec = [np.array(p) for p in state.pending_spec]
 
+    def take_over(self, other: "Beamformer") -> None:
+        """Continue the stream ``other`` was on, with this engine's beams and row layout.
+
+        The two engines have the same array and block; ``other`` has had its
+        pending power flushed. Its history is carried over, turned into sensor
+        rows when it held mirror-pair rows and this engine does not (exact:
+        the pairs' sums and differences give the sensors back), so the output
+        goes on without a restart (the way the service switches a mirror-pair
+        engine to adaptive beams). Where this engine's frame is longer, the
+        samples before the other's frame read as zeros (as after a reset).
+        """
+        state = other.state()
+        history = state.history
+        if other.mirror_pair_rows and not self.mirror_pair_rows:
+            history = other._basis.to_sensors(history)
+        n_fft = self._steer[1]
+        frame = np.zeros((n_fft, history.shape[1]), np.float32)
+        take = min(n_fft, len(history))
+        frame[n_fft - take:] = history[len(history) - take:]
+        self.resume(EngineState(next_sample=state.next_sample, power_origin=state.power_origin, n_fft=n_fft,
+                                history=frame, pending_start=(), pending_spec=()))
+
     def reset(self, first_sample: int = 0) -> None:
         """Forget all history (after a gap) and restart at ``first_sample``.
 
