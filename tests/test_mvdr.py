@@ -249,7 +249,7 @@ def test_the_service_switches_method_live_and_reports_it(tmp_path):
     mirror-pair rows switches too (a sensor-row engine takes the stream over), without a gap."""
     import time
 
-    from beamtap.client import Controller, ServiceError, Subscriber
+    from beamtap.client import Controller, Subscriber
 
     from conftest import line_config, running_service
 
