@@ -39,6 +39,9 @@ from .transform import cache_aligned, irfft_columns
 __all__ = ["COMPILED_AVAILABLE", "KERNELS_MISSING", "BeamSet", "Beamformer", "BlockResult", "EngineState", "sanitize"]
 
 _FLOAT32_MAX = float(np.finfo(np.float32).max)
+#: Input samples beyond this (a million times full scale) are held at it: their power would
+#: overflow float32 on its way through the band power.
+INPUT_LIMIT = 1e6
 #: Beamforming methods: delay-and-sum, minimum variance distortionless response.
 METHODS = ("das", "mvdr")
 #: Most threads one engine uses (the compiled team's limit).
@@ -513,7 +516,7 @@ class Beamformer:
         if self.compiled:
             chunk = np.ascontiguousarray(chunk)
             lo, hi, finite = self._write_rows(chunk)
-            if not finite:  # rare: written again from a cleaned copy
+            if not finite or hi > INPUT_LIMIT or lo < -INPUT_LIMIT:  # rare: again from a cleaned copy
                 chunk, bad, clipped = sanitize(chunk)
                 self._write_rows(chunk)
             elif hi >= 1.0 or lo <= -1.0:
@@ -618,6 +621,10 @@ def sanitize(block: np.ndarray) -> tuple:
         x[bad] = 0.0
         top, bottom = float(x.max()), float(x.min())
     clip_count = _count_clipped(x) if (top >= 1.0 or bottom <= -1.0) else 0
+    if top > INPUT_LIMIT or bottom < -INPUT_LIMIT:
+        # Samples this far beyond full scale are junk, and their power would overflow float32:
+        # held at the limit (and counted as clipped, above).
+        x = np.clip(x, -INPUT_LIMIT, INPUT_LIMIT)
     return x, nan_count, clip_count
 
 
