@@ -567,8 +567,8 @@ class Beamformer:
         for i, ev in enumerate(steer.bands):
             lo = int(ev.bins[0]) - steer.k1
             ms = ev.mean_square_in(y, lo, self.compiled, self._team)
-            # Input far beyond full scale (counted as clipped) can overflow float32 power: such a row
-            # reads the largest float32 level (385 dB) rather than infinity.
+            # A safety net behind INPUT_LIMIT: power that still came out non-finite reads the largest
+            # float32 level (385 dB) rather than infinity or NaN.
             np.nan_to_num(ms, copy=False, nan=_FLOAT32_MAX, posinf=_FLOAT32_MAX)
             np.maximum(ms, 1e-30, out=ms)
             np.log10(ms, out=ms)
