@@ -165,12 +165,15 @@ class View:
         for i, ch in enumerate(text):
             if 0 <= start + i < plot_w and start + i != peak_col:
                 marker[start + i] = ch
-        for t in self.tracks:  # track ids over the fan: T7 at its bearing
-            c = int(np.argmin(np.abs(az[cols] - float(t.get("bearing_deg", 0.0)))))
-            for i, ch in enumerate(f"T{t.get('track')}"):
-                if c + i < plot_w:
-                    marker[c + i] = ch
         lines.append(" " * MARGIN + "".join(marker))
+        if self.tracks:  # track ids on a line of their own: T7 at its bearing
+            ids = [" "] * plot_w
+            for t in self.tracks:
+                c = int(np.argmin(np.abs(az[cols] - float(t.get("bearing_deg", 0.0)))))
+                for i, ch in enumerate(f"T{t.get('track')}"):
+                    if c + i < plot_w:
+                        ids[c + i] = ch
+            lines.append(" " * MARGIN + "".join(ids))
         lines.append(" " * MARGIN + axis(az[cols], plot_w))
         if self.tracks:
             now_t = now_utc if now_utc is not None else time.time()
