@@ -70,19 +70,6 @@ class _Steering:
         phase = 2.0 * np.pi * np.asarray(bins)[:, None, None] * tau[None, :, :] / n_fft
         return np.exp(1j * phase) / geometry.active_gain[None, None, :]
 
-    def with_steering(self, power_h: np.ndarray, audio_h: np.ndarray | None) -> "_Steering":
-        """The same set-up (FFT, bands) with other steering: ``power_h`` (power bins, beams, sensors)
-        and ``audio_h`` (all bins, audio beams, sensors), e.g. adaptive weights. Sensor rows only."""
-        _, basis, _, _, bulk_delay, n_fft, compiled, team = self._context
-        if basis.pairs is not None:
-            raise ValueError("with_steering: the history holds mirror-pair rows; build the engine with pair_rows=False")
-        out = object.__new__(_Steering)
-        out.__dict__.update(self.__dict__)
-        out.power = _BeamProduct(power_h, basis, False, bulk_delay, n_fft, self.power_bins, compiled, team)
-        out.audio = None if audio_h is None else _BeamProduct(audio_h, basis, False, bulk_delay, n_fft,
-                                                              np.arange(n_fft // 2 + 1), compiled, team)
-        return out
-
     def with_bins(self, power_rel: np.ndarray, power_h: np.ndarray, audio_rel: np.ndarray | None,
                   audio_h: np.ndarray | None) -> "_Steering":
         """This steering with the given bins' steering replaced (power bins ``power_rel`` of the
