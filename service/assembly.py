@@ -35,9 +35,10 @@ def make_beamformer(config: Config, beams=None, threads: int = 1, live: bool = F
         raise UsageError(f"{config.where}: [beams] {exc}") from None
 
 
-def make_detection(config: Config, engine: Beamformer, settings=None) -> DetectionStage:
-    """The detection and tracking stage for the engine's current beams (``settings`` over the config's)."""
-    beams = engine.beams
+def make_detection(config: Config, beams, band_filters, settings=None) -> DetectionStage:
+    """The detection and tracking stage for ``beams`` and their band filters (an engine's
+    ``band_filters``, or a prepared steering's ``bands``), ``settings`` over the config's. Built off
+    the processing thread: it scans a beamwidth."""
     settings = settings or config.detect
     band = beams.bands_hz[min(settings.band, len(beams.bands_hz) - 1)]
     mid = beams.power_deg[len(beams.power_deg) // 2]
@@ -46,8 +47,8 @@ def make_detection(config: Config, engine: Beamformer, settings=None) -> Detecti
     lobe = width if np.isfinite(width) else 10.0
     # Adaptive beams' power does not follow the gamma law: their threshold is measured (detect.py).
     law = "measured" if beams.method == "mvdr" else "gamma"
-    return DetectionStage(beams.power_deg, [ev.filter.taps for ev in engine.band_filters], engine.block_frames,
-                          engine.samplerate_hz, settings, lobe_deg=lobe, law=law)
+    return DetectionStage(beams.power_deg, [ev.filter.taps for ev in band_filters], config.input.block_frames,
+                          config.input.samplerate_hz, settings, lobe_deg=lobe, law=law)
 
 
 def cost_model(config: Config, engine: Beamformer) -> cost.CostModel:

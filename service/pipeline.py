@@ -49,7 +49,8 @@ class Pipeline:
         self.engine = make_beamformer(config, threads=config.engine_threads(offline=False), live=True)
         self.bulk_delay = self.engine.bulk_delay_samples
         # detections and tracks on their own thread, fed each block's power rows
-        self.tracking = TrackingThread(make_detection(config, self.engine), publisher, recorder)
+        self.tracking = TrackingThread(make_detection(config, self.engine.beams, self.engine.band_filters),
+                                       publisher, recorder)
         geo = config.geometry
         self._gain_cols = geo.active_channel_index
         self._gain = geo.active_gain.astype(np.float32)
@@ -111,8 +112,12 @@ class Pipeline:
             # Adaptive beams need one history row per sensor: a new engine with that layout takes
             # the stream over at the block boundary (its history from this one's, exactly).
             slot["engine"] = make_beamformer(self.config, beams, threads=self.engine.threads, live=True)
+            bands = slot["engine"].band_filters
         else:
             slot["prepared"] = self.engine.prepare(beams)
+            bands = slot["prepared"][0].bands
+        # the new beams' detection stage, built here rather than on the processing thread
+        slot["detection"] = make_detection(self.config, beams, bands, self.tracking.settings)
         self._retargets.put(slot, timeout=timeout)
         if not done.wait(timeout):
             slot["cancelled"] = True  # the caller is told it failed, so it must not happen later
@@ -193,7 +198,7 @@ class Pipeline:
                 self._release(self.engine.apply(slot["prepared"]))
                 self.engine = engine_for(None, slot["beams"], current=self.engine)  # MVDR over it, or not
             # New beams: a new background and new tracks (the old ones end, said in the next message).
-            self.tracking.new_stage(make_detection(self.config, self.engine, self.tracking.settings))
+            self.tracking.new_stage(slot["detection"])
             self.beam_table_id += 1
             self.beam_table = self._beam_table(slot["beams"])
             self.counts["retargets"] += 1
@@ -314,7 +319,7 @@ class Pipeline:
             "publishing": ["power", "detections", "tracks"] + (["audio"] if len(self.engine.beams.audio_deg) else [])
             + (["raw"] if self.config.publish.raw else []),
             **self.tracking.status(),
-            "adaptive": self.engine.status() if getattr(self.engine, "method", "das") == "mvdr" else None,
+            "adaptive": self.engine.status() if self.engine.method == "mvdr" else None,
         }
         if self.recorder is not None:
             out["record"] = self.recorder.status()

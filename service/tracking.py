@@ -96,6 +96,7 @@ class TrackingThread:
         if kind == "stage":
             self._ended_pending += self.stage.tracker.reset()
             self.stage = item[1]
+            self.stage.set_settings(self.settings)  # the latest asked for, whenever the stage was built
             return
         _, power_db, firsts, commons = item
         band = self.stage.settings.band

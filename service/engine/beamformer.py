@@ -38,7 +38,6 @@ from .transform import cache_aligned, irfft_columns
 
 __all__ = ["COMPILED_AVAILABLE", "KERNELS_MISSING", "BeamSet", "Beamformer", "BlockResult", "EngineState", "sanitize"]
 
-_FLOAT32_MAX = float(np.finfo(np.float32).max)
 #: Input samples beyond this (a million times full scale) are held at it: their power would
 #: overflow float32 on its way through the band power.
 INPUT_LIMIT = 1e6
@@ -406,6 +405,11 @@ class Beamformer:
 
     # ---- properties ---------------------------------------------------
     @property
+    def method(self) -> str:
+        """``"das"``: delay-and-sum (:class:`~beamtap.service.engine.mvdr.AdaptiveBeamformer` says ``"mvdr"``)."""
+        return "das"
+
+    @property
     def threads(self) -> int:
         """Threads working on each block (1 after :meth:`close` or without the compiled kernels)."""
         return 1 if self._team is None else self._team.threads
@@ -566,10 +570,7 @@ class Beamformer:
         out = np.empty((len(starts), len(steer.bands), y.shape[1]), np.float32)
         for i, ev in enumerate(steer.bands):
             lo = int(ev.bins[0]) - steer.k1
-            ms = ev.mean_square_in(y, lo, self.compiled, self._team)
-            # A safety net behind INPUT_LIMIT: power that still came out non-finite reads the largest
-            # float32 level (385 dB) rather than infinity or NaN.
-            np.nan_to_num(ms, copy=False, nan=_FLOAT32_MAX, posinf=_FLOAT32_MAX)
+            ms = ev.mean_square_in(y, lo, self.compiled, self._team)  # finite: input held at INPUT_LIMIT
             np.maximum(ms, 1e-30, out=ms)
             np.log10(ms, out=ms)
             ms *= 10.0

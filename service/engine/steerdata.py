@@ -51,22 +51,27 @@ class _Steering:
     def das_steering(self, directions_deg, bins) -> tuple:
         """Delay-and-sum steering ``h`` (bins, beams, sensors) of ``directions_deg`` on ``bins``, with
         the weights (shading x gain, (beams, sensors)) and relative delays (samples) it is made of."""
-        geometry, _, c, fs, bulk_delay, n_fft, _, _ = self._context
+        geometry, _, _, _, bulk_delay, n_fft, _, _ = self._context
         beams = self.beams
-        units = unit_vectors(directions_deg[:, 0], directions_deg[:, 1])
+        units, tau = self._delays(directions_deg)
         w = shading.shading_weights(geometry.kind, geometry.positions_m, geometry.active, units,
                                     beams.shading, beams.sidelobe_db, beams.nbar) * geometry.active_gain[None, :]
-        tau = steering.relative_delays_samples(geometry.centred_positions_m, geometry.active_trim_s, units, c, fs)
         return steering.steering_spectra(bulk_delay + tau, w, n_fft, bins), w, tau
+
+    def _delays(self, directions_deg) -> tuple:
+        """Unit vectors and relative delays (samples, trims included) of the directions' plane waves."""
+        geometry, _, c, fs, _, _, _, _ = self._context
+        units = unit_vectors(directions_deg[:, 0], directions_deg[:, 1])
+        return units, steering.relative_delays_samples(geometry.centred_positions_m, geometry.active_trim_s,
+                                                       units, c, fs)
 
     def manifold(self, directions_deg, bins) -> np.ndarray:
         """What the sensors hear, per unit of source spectrum, of a plane wave from each direction:
         ``a[k, b, m] = exp(+2 pi j k tau_m / N) / gain_m`` (bins, beams, sensors), the convention in
         which the delay-and-sum steering gives ``sum_m h[k, b, m] a[k, b, m]`` close to the bulk delay's
         phase ``exp(-2 pi j k D / N)``."""
-        geometry, _, c, fs, _, n_fft, _, _ = self._context
-        units = unit_vectors(directions_deg[:, 0], directions_deg[:, 1])
-        tau = steering.relative_delays_samples(geometry.centred_positions_m, geometry.active_trim_s, units, c, fs)
+        geometry, _, _, _, _, n_fft, _, _ = self._context
+        _, tau = self._delays(directions_deg)
         phase = 2.0 * np.pi * np.asarray(bins)[:, None, None] * tau[None, :, :] / n_fft
         return np.exp(1j * phase) / geometry.active_gain[None, None, :]
 

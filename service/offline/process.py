@@ -297,7 +297,7 @@ def _process_runs(config: Config, runs, out: Path, source: str, input_format: st
     batch_blocks = max(2, int(fs / 2 / block))  # about half a second of outputs per write
     bar = Progress(total, fs)
     batch_audio, batch_firsts, batch_power = [], [], []
-    stage = make_detection(config, bf)
+    stage = make_detection(config, bf.beams, bf.band_filters)
     track_log: dict = {}  # track id -> its summary (first and last seen, confirmed, detections)
 
     def detect_rows(firsts, utcs, power_db):
