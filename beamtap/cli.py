@@ -252,6 +252,19 @@ def cmd_record(args):
                       args.label, args.idle_s, args.keep_going)
 
 
+def cmd_web(args):
+    from beamtap.client.subscriber import control_for  # noqa: PLC0415
+    from beamtap.client.web import server  # noqa: PLC0415
+    from beamtap.client.web.settings import WebSettings  # noqa: PLC0415
+    from beamtap.service.serve import setup_logging  # noqa: PLC0415
+
+    setup_logging(args.log_level)
+    settings = WebSettings(args.listen, args.tls_cert, args.tls_key, args.operator_token_file,
+                           args.reader_token_file, args.allow_insecure)
+    return server.run(args.endpoint, args.control or control_for(args.endpoint), settings, args.ready_file,
+                      args.seconds, args.parent_pid)
+
+
 def cmd_mark(args):
     from beamtap.client import Controller  # noqa: PLC0415
 
@@ -264,7 +277,7 @@ COMMANDS = {}
 
 
 #: Client commands: they take --key and --server-key for a secured service.
-CLIENTS = ("tail", "watch", "ctl", "listen", "picture", "record", "mark")
+CLIENTS = ("tail", "watch", "ctl", "listen", "picture", "record", "mark", "web")
 
 
 def _add(sub, name, func, help_text):
@@ -432,6 +445,27 @@ def build_parser() -> argparse.ArgumentParser:
                    help="warn (and note it in the manifest) after this many seconds without data (default 5)")
     p.add_argument("--continue", dest="keep_going", action="store_true",
                    help="when the service restarts, go on in the same session (default: start a new one)")
+
+    from beamtap.client.web.settings import DEFAULT_LISTEN  # noqa: PLC0415
+
+    p = _add(sub, "web", cmd_web, "serve a live view of a running service to web browsers (needs the web extra)")
+    p.add_argument("--endpoint", default=DEFAULT_PUBLISH, help=f"service stream (default {DEFAULT_PUBLISH})")
+    p.add_argument("--control", default=None,
+                   help="control socket, for pointing the listening beam (default: the --endpoint host with the "
+                        "default control port)")
+    p.add_argument("--listen", default=DEFAULT_LISTEN, metavar="HOST:PORT",
+                   help=f"where browsers connect (default {DEFAULT_LISTEN}; off loopback needs TLS and a token file)")
+    p.add_argument("--tls-cert", default=None, metavar="PEM", help="certificate chain: serve HTTPS")
+    p.add_argument("--tls-key", default=None, metavar="PEM", help="the certificate's private key")
+    p.add_argument("--operator-token-file", default=None, metavar="FILE",
+                   help="file holding the token that may point the listening beam")
+    p.add_argument("--reader-token-file", default=None, metavar="FILE", help="file holding a view-only token")
+    p.add_argument("--allow-insecure", action="store_true",
+                   help="serve off loopback without TLS (tokens cross the network in the clear)")
+    p.add_argument("--ready-file", default=None, metavar="PATH", help="write the page's address as JSON here")
+    p.add_argument("--seconds", type=float, default=None, help="stop after this many seconds")
+    p.add_argument("--log-level", default="INFO", choices=["DEBUG", "INFO", "WARNING", "ERROR"])
+    p.add_argument("--parent-pid", type=int, default=None, help=argparse.SUPPRESS)
 
     p = _add(sub, "mark", cmd_mark, "add a timestamped event mark to the service's recording")
     p.add_argument("text", nargs="+", help="the mark, e.g. 'run 3 starts'")

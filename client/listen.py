@@ -104,6 +104,19 @@ class Limiter:
         return y.astype(np.float32)
 
 
+def point_audio_beam(ctl: Controller, beam: int, look) -> list:
+    """Point audio beam ``beam`` toward ``look`` = (azimuth_deg, elevation_deg), adding beams up to it
+    if the service has fewer; returns the audio directions before (to restore them).
+
+    Raises ``ServiceError`` when the service refuses (for example a reader key, or the cost limit).
+    """
+    previous = ctl.beams()["beams"]["audio_deg"]
+    audio = list(previous) + [[0.0, 0.0]] * max(0, beam + 1 - len(previous))
+    audio[beam] = [float(look[0]), float(look[1])]
+    ctl.beams(set={"audio_deg": audio})
+    return previous
+
+
 def run(endpoint: str, control: str | None, beam: int, look, device, gain_db: float, limit_db: float,
         buffer_ms: float, seconds: float | None, keep: bool = False) -> int:
     if limit_db > 0:
@@ -116,10 +129,7 @@ def run(endpoint: str, control: str | None, beam: int, look, device, gain_db: fl
     if look is not None:
         with Controller(control) as ctl:
             try:
-                previous = ctl.beams()["beams"]["audio_deg"]
-                audio = list(previous) + [[0.0, 0.0]] * max(0, beam + 1 - len(previous))
-                audio[beam] = [float(look[0]), float(look[1])]
-                ctl.beams(set={"audio_deg": audio})
+                previous = point_audio_beam(ctl, beam, look)
             except ServiceError as exc:
                 raise UsageError(f"--look: {exc}") from None
         sys.stderr.write(f"listen: audio beam {beam} now looks toward {look[0]:g}°/{look[1]:g}° "

@@ -18,7 +18,8 @@ from pathlib import Path
 import numpy as np
 
 from beamtap.client.protocol import DEFAULT_CONTROL, DEFAULT_PUBLISH
-from beamtap.errors import ConfigError
+from beamtap.client.web.settings import DEFAULT_LISTEN, WebSettings
+from beamtap.errors import ConfigError, UsageError
 
 from .tomlcheck import _REQUIRED, _Table
 
@@ -121,6 +122,13 @@ class EngineConfig:
 
 
 @dataclass(frozen=True)
+class WebConfig:
+    """``[web]``: the service serves the browser view itself (a child process running ``beamtap web``)."""
+    enabled: bool = False
+    settings: WebSettings = field(default_factory=WebSettings)
+
+
+@dataclass(frozen=True)
 class Config:
     """A validated beamtap config."""
 
@@ -137,6 +145,7 @@ class Config:
     security: SecurityConfig = field(default_factory=SecurityConfig)
     engine: EngineConfig = field(default_factory=EngineConfig)
     detect: DetectSettings = field(default_factory=DetectSettings)
+    web: WebConfig = field(default_factory=WebConfig)
 
     def engine_threads(self, offline: bool, override: int | None = None) -> int:
         """Threads for the engine: ``override`` (``--threads``), else ``[engine] threads``, else 1
@@ -255,9 +264,10 @@ def loads(text: str, where: str = "<config>") -> Config:
     security = _security(top.table("security", {}))
     engine = _engine(top.table("engine", {}))
     detect = parse_detect(top.table("detect", {}), len(beams.bands_hz))
+    web = _web(top.table("web"), security) if top.has("web") else WebConfig()
     top.done()
     return Config(where, text, geometry, medium, inp, beams, batch, publish, control, record, security, engine,
-                  detect)
+                  detect, web)
 
 
 def parse_detect(t: _Table, n_bands: int, base: DetectSettings | None = None) -> DetectSettings:
@@ -560,6 +570,26 @@ def _security(t: _Table) -> SecurityConfig:
         t.fail("clients", _REQUIRED, "a folder of operators' public keys when server_key is set")
     t.done()
     return SecurityConfig(server_key, clients, readers, insecure)
+
+
+def _web(t: _Table, security: SecurityConfig) -> WebConfig:
+    """``[web]`` (present: the service serves the page unless ``enabled = false``)."""
+    enabled = t.boolean("enabled", True)
+    settings = WebSettings(listen=t.string("listen", DEFAULT_LISTEN), tls_cert=_path(t, "tls_cert", folder=False),
+                           tls_key=_path(t, "tls_key", folder=False),
+                           operator_token_file=_path(t, "operator_token_file", folder=False),
+                           reader_token_file=_path(t, "reader_token_file", folder=False),
+                           allow_insecure=security.allow_insecure, key=_path(t, "key", folder=False))
+    t.done()
+    if enabled:
+        try:
+            settings.check(f"{t.where}: [web]")
+        except UsageError as exc:
+            raise ConfigError(t.where, "(file)", str(exc).split(": ", 1)[1]) from None
+        if security.server_key is not None and settings.key is None:
+            t.fail("key", _REQUIRED, "the web server's own secret key file (NAME.key_secret, its public key in "
+                                     "[security] clients) when the service is secured")
+    return WebConfig(enabled, settings)
 
 
 def _publish(t: _Table) -> PublishConfig:

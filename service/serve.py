@@ -31,6 +31,7 @@ from .publisher import Publisher
 from .security import Guard
 from .recorder import Recorder
 from .sources import make_source
+from .webview import WebView
 
 log = logging.getLogger("beamtap.serve")
 
@@ -57,6 +58,7 @@ class Service:
         self.recorder = None
         self.cost = None
         self.guard = None
+        self.webview = None
 
     def start(self) -> None:
         cfg = self.config
@@ -106,13 +108,16 @@ class Service:
         self.control.start()
         self.pipeline.start()
         self.source.start()
+        if cfg.web.enabled:
+            self.webview = WebView(cfg, self.publisher.endpoint, self.control.endpoint)
+            log.info("browser view on %s", self.webview.start())
         if self.recorder is not None:
             self.recorder.start_thread()
             if cfg.record.on_start:
                 self.recorder.start(None, "on start")
 
     def stop(self) -> None:
-        for part in (self.source, self.pipeline, self.recorder, self.control):
+        for part in (self.webview, self.source, self.pipeline, self.recorder, self.control):
             if part is not None:
                 try:
                     part.stop_thread() if part is self.recorder else part.stop()
@@ -125,8 +130,11 @@ class Service:
         self.context.term()
 
     def endpoints(self) -> dict:
-        return {"publish": self.publisher.endpoint, "control": self.control.endpoint, "stream": self.stream_id,
-                "pid": os.getpid()}
+        out = {"publish": self.publisher.endpoint, "control": self.control.endpoint, "stream": self.stream_id,
+               "pid": os.getpid()}
+        if self.webview is not None:
+            out["web"] = self.webview.url
+        return out
 
 
 def run(config: Config, builtin: bool, publish: str | None = None, control: str | None = None,
@@ -160,6 +168,8 @@ def run(config: Config, builtin: bool, publish: str | None = None, control: str 
         while not stop.wait(0.2):
             if deadline is not None and time.monotonic() >= deadline:
                 break
+            if service.webview is not None:
+                service.webview.check()
             if reload.is_set():
                 reload.clear()
                 log.info("SIGHUP: reading the key folders again")
