@@ -199,3 +199,21 @@ def run_in_pty(args, env, timeout_s, send=None, after_s=None, size=(40, 120)):
         os.close(slave)
         os.close(master)
     return rc, out, before, after
+
+
+@contextlib.contextmanager
+def running_web(tmp_path, publish, control, extra=(), expect_rc=0):
+    """Start ``beamtap web`` on an ephemeral loopback port for a running service; yields (url, log path)."""
+    ready = tmp_path / f"web-{time.monotonic_ns()}.json"
+    log_path = tmp_path / f"web-{time.monotonic_ns()}.log"
+    args = [sys.executable, "-m", "beamtap", "web", "--endpoint", publish, "--control", control,
+            "--listen", "127.0.0.1:0", "--ready-file", str(ready), *extra]
+    with open(log_path, "w") as log:
+        proc = subprocess.Popen(args, stdout=log, stderr=subprocess.STDOUT)
+    info = wait_ready(proc, ready, 30)
+    assert info is not None, open(log_path).read()
+    try:
+        yield info["url"], log_path
+    finally:
+        stop(proc)
+    assert proc.returncode == expect_rc, open(log_path).read()

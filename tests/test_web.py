@@ -7,7 +7,6 @@ The page itself is tested in a real headless Chromium in test_web_browser.py.
 from __future__ import annotations
 
 import asyncio
-import contextlib
 import json
 import math
 import os
@@ -25,9 +24,8 @@ from beamtap.client.web.feed import Feed
 from beamtap.client.web.server import listen_request, origin_allowed, parse_page_message
 from beamtap.client.web.settings import MIN_TOKEN_CHARS, WebSettings, parse_listen, role_of
 from beamtap.errors import UsageError
-from beamtap.processes import stop, wait_ready
 
-from conftest import line_config, running_service
+from conftest import line_config, running_service, running_web
 
 aiohttp = pytest.importorskip("aiohttp")
 
@@ -193,23 +191,6 @@ def test_origin_must_be_this_server():
 
 
 # ---- against a real service ------------------------------------------------------------------------------
-@contextlib.contextmanager
-def running_web(tmp_path, publish, control, extra=(), expect_rc=0):
-    ready = tmp_path / f"web-{time.monotonic_ns()}.json"
-    log_path = tmp_path / f"web-{time.monotonic_ns()}.log"
-    args = [sys.executable, "-m", "beamtap", "web", "--endpoint", publish, "--control", control,
-            "--listen", "127.0.0.1:0", "--ready-file", str(ready), *extra]
-    with open(log_path, "w") as log:
-        proc = subprocess.Popen(args, stdout=log, stderr=subprocess.STDOUT)
-    info = wait_ready(proc, ready, 30)
-    assert info is not None, open(log_path).read()
-    try:
-        yield info["url"], log_path
-    finally:
-        stop(proc)
-    assert proc.returncode == expect_rc, open(log_path).read()
-
-
 @pytest.fixture(scope="module")
 def svc(tmp_path_factory):
     with running_service(tmp_path_factory.mktemp("websvc"), SCENE) as s:

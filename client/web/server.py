@@ -85,6 +85,7 @@ class Hub:
         self.endpoint, self.control, self.loop = endpoint, control, loop
         self.keys = (key, server_key)
         self.feeds: set[Feed] = set()
+        self.sockets: set = set()  # the pages' WebSockets, closed when the server stops
         self.latest: dict[str, dict] = {}
         self.received = 0
         self.bad_messages = 0
@@ -249,56 +250,67 @@ def _websocket_handler(hub: Hub, tokens: dict[str, str]):
             return web.Response(status=403, text="this WebSocket serves pages from this server only")
         ws = web.WebSocketResponse(max_msg_size=MAX_PAGE_MESSAGE_BYTES, heartbeat=10.0)
         await ws.prepare(request)
-        await ws.send_str(json_text({"type": "hello", "auth": bool(tokens), "palette": list(palette.STOPS),
-                                     "caution": CAUTION.format(limit=-6)}))
-        role = OPERATOR if not tokens else await _authenticate(ws, tokens)
-        if role is None:
-            await ws.close(code=4401, message=b"token refused")
-            return ws
-        await ws.send_str(json_text({"type": "welcome", "role": role}))
-        feed = Feed()
-        wake = asyncio.Event()
-        feed.wanted = wake.set
-        hub.add(feed)
-        sender = asyncio.create_task(_send_loop(ws, feed, wake))
-        busy = False
+        hub.sockets.add(ws)
         try:
-            async for msg in ws:
-                if msg.type != WSMsgType.TEXT:
-                    feed.put_json("error", {"error": "expected JSON text messages"})
-                    continue
-                try:
-                    req = parse_page_message(msg.data)
-                    kind = req["type"]
-                    if kind == "stop":
-                        feed.listening = False
-                        feed.put_json("listening", {"on": False})
-                        continue
-                    if kind != "listen":
-                        raise ValueError(f"unknown message type {kind!r} (expected listen or stop)")
-                    az, el = listen_request(req)
-                    if role != OPERATOR:
-                        raise ValueError("pointing the listening beam needs an operator token")
-                    if busy:
-                        raise ValueError("a listen request is still on its way; try again in a moment")
-                except ValueError as exc:
-                    feed.put_json("error", {"error": str(exc)})
-                    continue
-                busy = True
-                try:
-                    beams = await hub.point(az, el)
-                    feed.listening = True
-                    feed.put_json("listening", {"on": True, "azimuth_deg": az, "elevation_deg": el,
-                                                "beam_table": beams.get("beam_table")})
-                except (ServiceError, UsageError, OSError) as exc:
-                    feed.put_json("error", {"error": f"the service refused the listening beam: {exc}"})
-                finally:
-                    busy = False
+            return await _session(ws, hub, tokens)
         finally:
-            hub.remove(feed)
-            sender.cancel()
-        return ws
+            hub.sockets.discard(ws)
     return handler
+
+
+async def _session(ws, hub: Hub, tokens: dict[str, str]):
+    """One page's connection, from hello to close."""
+    await ws.send_str(json_text({"type": "hello", "auth": bool(tokens), "palette": list(palette.STOPS),
+                                 "caution": CAUTION.format(limit=-6)}))
+    role = OPERATOR if not tokens else await _authenticate(ws, tokens)
+    if role is None:
+        await ws.close(code=4401, message=b"token refused")
+        return ws
+    await ws.send_str(json_text({"type": "welcome", "role": role}))
+    feed = Feed()
+    wake = asyncio.Event()
+    feed.wanted = wake.set
+    hub.add(feed)
+    sender = asyncio.create_task(_send_loop(ws, feed, wake))
+    pending = None  # the listen request on its way (one at a time per page)
+    try:
+        async for msg in ws:
+            if msg.type != WSMsgType.TEXT:
+                feed.put_json("error", {"error": "expected JSON text messages"})
+                continue
+            try:
+                req = parse_page_message(msg.data)
+                kind = req["type"]
+                if kind == "stop":
+                    feed.listening = False
+                    feed.put_json("listening", {"on": False})
+                    continue
+                if kind != "listen":
+                    raise ValueError(f"unknown message type {kind!r} (expected listen or stop)")
+                az, el = listen_request(req)
+                if role != OPERATOR:
+                    raise ValueError("pointing the listening beam needs an operator token")
+                if pending is not None and not pending.done():
+                    raise ValueError("a listen request is still on its way; try again in a moment")
+            except ValueError as exc:
+                feed.put_json("error", {"error": str(exc)})
+                continue
+            pending = asyncio.create_task(_point(hub, feed, az, el))
+    finally:
+        hub.remove(feed)
+        sender.cancel()
+    return ws
+
+
+async def _point(hub: Hub, feed: Feed, az: float, el: float) -> None:
+    try:
+        beams = await hub.point(az, el)
+    except (ServiceError, UsageError, OSError) as exc:
+        feed.put_json("error", {"error": f"the service refused the listening beam: {exc}"})
+        return
+    feed.listening = True
+    feed.put_json("listening", {"on": True, "azimuth_deg": az, "elevation_deg": el,
+                                "beam_table": beams.get("beam_table")})
 
 
 async def _authenticate(ws, tokens) -> str | None:
@@ -366,7 +378,7 @@ async def _serve(endpoint, control, settings, tokens, ssl_ctx, ready_file, secon
     for sig in (signal.SIGINT, signal.SIGTERM):
         loop.add_signal_handler(sig, stop.set)
     hub = Hub(endpoint, control, loop, settings.key, server_key)
-    runner = web.AppRunner(make_app(hub, tokens), access_log=None, handle_signals=False)
+    runner = web.AppRunner(make_app(hub, tokens), access_log=None, handle_signals=False, shutdown_timeout=2.0)
     await runner.setup()
     host, port = settings.host_port
     site = web.TCPSite(runner, host, port, ssl_context=ssl_ctx)
@@ -400,6 +412,8 @@ async def _serve(endpoint, control, settings, tokens, ssl_ctx, ready_file, secon
                 log.info("web: the service that started this server is gone; stopping")
                 break
     finally:
+        for ws in list(hub.sockets):  # pages reconnect on their own when a server comes back
+            await ws.close(code=1001, message=b"server stopping")
         hub.stop()
         await runner.cleanup()
         if ready_file:
