@@ -12,10 +12,11 @@ case "$what" in demo|test|setup) ;; *) echo "usage: sh deploy/quickstart.sh demo
 
 # System packages: PortAudio for the sound card, a C compiler and Python's
 # headers for the engine's compiled kernels; for the tests also the ALSA
-# plugins and JACK (virtual sound cards), and libzmq/msgpack-c (the
-# second-language subscriber example).
+# plugins and JACK (virtual sound cards), libzmq/msgpack-c (the
+# second-language subscriber example), and Chromium with its driver and
+# openssl (the browser view's tests).
 runtime_pkgs="libportaudio2 python3-venv gcc libc6-dev python3-dev"
-test_pkgs="libasound2-plugins jackd2 alsa-utils libzmq3-dev libmsgpack-dev pkg-config"
+test_pkgs="libasound2-plugins jackd2 alsa-utils libzmq3-dev libmsgpack-dev pkg-config chromium chromium-driver openssl"
 pkgs="$runtime_pkgs"
 [ "$what" = test ] && pkgs="$pkgs $test_pkgs"
 

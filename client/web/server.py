@@ -62,6 +62,11 @@ STATIC = {"index.html": "text/html", "app.js": "text/javascript", "style.css": "
 #: Strict: our own scripts, styles and WebSocket only; no inline code, no other origin, no frames.
 CSP = ("default-src 'none'; script-src 'self'; style-src 'self'; img-src 'self'; connect-src 'self'; "
        "base-uri 'none'; form-action 'none'; frame-ancestors 'none'")
+#: Audio goes to pages in chunks of at least this many seconds (fewer WebSocket frames; well inside the
+#: page's 200 ms jitter buffer).
+AUDIO_CHUNK_S = 0.08
+#: A view started by the service runs this much nicer than it, so the DSP always gets a core first.
+CHILD_NICE = 5
 #: Seconds a page has to give its token.
 AUTH_TIMEOUT_S = 20.0
 #: Largest message a page may send (a listen request is about 60 bytes).
@@ -93,6 +98,9 @@ class Hub:
         self._thread = threading.Thread(target=self._pump, name="web-subscriber", daemon=True)
         self._control_pool = ThreadPoolExecutor(1, thread_name_prefix="web-control")
         self.error: str | None = None
+        self.listeners = 0  # pages listening (written on the loop, read by the subscriber thread)
+        self._audio: list = []  # the listening beam's blocks not yet handed to the pages
+        self._audio_frames = 0
 
     def start(self) -> None:
         self._thread.start()
@@ -126,10 +134,18 @@ class Hub:
         if frame.topic == "power":
             return ("power", np.array(frame.data, np.float32), h.get("beam_table", 0), h.get("time_utc"))
         if frame.topic == "audio":
-            if frame.data.ndim != 2 or frame.data.shape[1] <= LISTEN_BEAM:
+            if frame.data.ndim != 2 or frame.data.shape[1] <= LISTEN_BEAM or not self.listeners:
+                self._audio, self._audio_frames = [], 0
                 return None
-            return ("audio", np.array(frame.data[:, LISTEN_BEAM], np.float32), h.get("beam_table", 0),
-                    h.get("time_utc"))
+            if frame.gap or (self._audio and self._audio[0][1] != h.get("beam_table", 0)):
+                self._audio, self._audio_frames = [], 0  # never join audio across a gap or a beam change
+            self._audio.append((np.array(frame.data[:, LISTEN_BEAM], np.float32), h.get("beam_table", 0),
+                                h.get("time_utc")))
+            self._audio_frames += len(frame.data)
+            if self._audio_frames < AUDIO_CHUNK_S * float(h.get("samplerate_hz", 48000.0)):
+                return None
+            blocks, self._audio, self._audio_frames = self._audio, [], 0
+            return ("audio", np.concatenate([b[0] for b in blocks]), blocks[0][1], blocks[0][2])
         if frame.topic == "tracks":
             tracks = frame.data.get("tracks", []) if isinstance(frame.data, dict) else []
             return ("tracks", {"utc": h.get("time_utc"), "band": h.get("band"), "beam_table": h.get("beam_table"),
@@ -167,7 +183,13 @@ class Hub:
             feed.put_json("status", self.status_for(feed, self.latest["status"]), latest_only=True)
 
     def remove(self, feed: Feed) -> None:
+        self.set_listening(feed, False)
         self.feeds.discard(feed)
+
+    def set_listening(self, feed: Feed, on: bool) -> None:
+        if feed.listening != on:
+            feed.listening = on
+            self.listeners += 1 if on else -1
 
     async def point(self, azimuth_deg: float, elevation_deg: float) -> dict:
         """Point the listening beam (on a thread: the control socket blocks)."""
@@ -282,7 +304,7 @@ async def _session(ws, hub: Hub, tokens: dict[str, str]):
                 req = parse_page_message(msg.data)
                 kind = req["type"]
                 if kind == "stop":
-                    feed.listening = False
+                    hub.set_listening(feed, False)
                     feed.put_json("listening", {"on": False})
                     continue
                 if kind != "listen":
@@ -308,7 +330,7 @@ async def _point(hub: Hub, feed: Feed, az: float, el: float) -> None:
     except (ServiceError, UsageError, OSError) as exc:
         feed.put_json("error", {"error": f"the service refused the listening beam: {exc}"})
         return
-    feed.listening = True
+    hub.set_listening(feed, True)
     feed.put_json("listening", {"on": True, "azimuth_deg": az, "elevation_deg": el,
                                 "beam_table": beams.get("beam_table")})
 
@@ -364,6 +386,8 @@ def run(endpoint: str, control: str, settings: WebSettings, ready_file: str | No
     """Serve until SIGINT/SIGTERM, ``seconds``, or the death of ``parent_pid``; returns the exit status."""
     if web is None:
         raise UsageError(NEED_EXTRA)
+    if parent_pid is not None:
+        os.nice(CHILD_NICE)
     for warning in settings.check("web"):
         log.warning(warning)
     tokens = settings.tokens("web")
