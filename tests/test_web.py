@@ -446,3 +446,51 @@ def test_web_config_errors(tmp_path):
             config.loads(SCENE + extra, str(tmp_path / "x.toml"))
     assert config.loads(SCENE + '[web]\nenabled = false\nlisten = "0.0.0.0:1"\n').web.enabled is False
     assert config.loads(SCENE).web.enabled is False
+
+
+@pytest.mark.parametrize("folder,can_steer", [("clients", True), ("readers", False)])
+def test_secured_service_runs_its_view_with_the_views_own_key(tmp_path, folder, can_steer):
+    """[security] on: the view connects with its own key ([web] key); the service, not the view,
+    decides what that key may change (a reader key cannot point the listening beam)."""
+    mine, clients, readers = tmp_path / "mine", tmp_path / "clients", tmp_path / "readers"
+    for d in (mine, clients, readers):
+        d.mkdir()
+
+    def keys(name):
+        r = subprocess.run([sys.executable, "-m", "beamtap", "keys", name, "--out", str(mine)], capture_output=True,
+                           text=True, timeout=60)
+        assert r.returncode == 0, r.stderr
+        return mine / f"{name}.key", mine / f"{name}.key_secret"
+
+    _, svc_secret = keys("pier-service")
+    web_public, web_secret = keys("web-view")
+    import shutil
+    shutil.copy(web_public, tmp_path / folder)
+    text = (SCENE + f'[security]\nserver_key = "{svc_secret}"\nclients = "{clients}"\nreaders = "{readers}"\n'
+            f'[web]\nlisten = "127.0.0.1:0"\nkey = "{web_secret}"\n')
+    with running_service(tmp_path, text) as s:
+        async def go():
+            async with aiohttp.ClientSession() as session:
+                async with session.ws_connect(s.endpoints["web"] + "ws") as ws:
+                    texts, rows = await _messages(ws, lambda t, b: len(b) >= 5)
+                    await ws.send_str(json.dumps({"type": "listen", "azimuth_deg": 20.0}))
+                    more, _ = await _messages(ws, lambda t, b: _of(t, "listening") or _of(t, "error"))
+            return rows, more
+        rows, more = asyncio.run(go())
+    assert rows[0][4].shape == (1, 46)
+    if can_steer:
+        assert _of(more, "listening")[0]["azimuth_deg"] == 20.0
+    else:
+        assert "refused" in _of(more, "error")[0]["error"] and not _of(more, "listening")
+
+
+def test_secured_service_needs_a_key_for_its_view(tmp_path):
+    from beamtap.errors import ConfigError
+    from beamtap.service import config
+
+    key = tmp_path / "k.key_secret"
+    key.write_text("x")
+    (tmp_path / "c").mkdir()
+    with pytest.raises(ConfigError, match=r"\[web.key\]|web\.key"):
+        config.loads(SCENE + f'[security]\nserver_key = "{key}"\nclients = "{tmp_path / "c"}"\n[web]\n',
+                     str(tmp_path / "x.toml"))
