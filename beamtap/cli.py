@@ -17,6 +17,7 @@ for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
 import argparse  # noqa: E402
 import math  # noqa: E402
 import sys  # noqa: E402
+from pathlib import Path  # noqa: E402
 
 from beamtap import __version__, outputs  # noqa: E402
 from beamtap.errors import UsageError  # noqa: E402
@@ -127,27 +128,39 @@ def cmd_simulate(args):
 
 def cmd_process(args):
     from beamtap.service import offline  # noqa: PLC0415
+    from beamtap.service.offline import campaign  # noqa: PLC0415
 
     inputs = list(args.inputs)
     config = args.config
     if config is None and len(inputs) == 2 and inputs[0].endswith(".toml"):  # the older form: CONFIG INPUT
         config = inputs.pop(0)
-    if len(inputs) != 1:
-        raise UsageError(f"process: got {len(inputs)} inputs ({' '.join(inputs)}), expected one WAV file or "
-                         "session folder")
     start_utc = None
     if args.start_utc is not None:
         start_utc = _utc_arg(args.start_utc)
-    outputs.check_folder(args.out, args.overwrite, offline.PROCESS_OUTPUTS)
-    result = offline.process(None if config is None else load_config(config), inputs[0], args.out,
-                             args.allow_mismatch, warn=lambda line: sys.stderr.write(f"beamtap process: warning: "
-                                                                                     f"{line}\n"),
-                             start_utc=start_utc, threads=args.threads)
-    confirmed = sum(1 for t in result["tracks"] if t["confirmed"])
-    print(f"wrote {args.out}/beams.csv, power.csv, audio.wav, detections.csv, tracks.csv, summary.json: "
-          f"{result['frames_processed']} frames, {result['power_rows']} power rows, {confirmed} confirmed tracks, "
-          f"D = {result['bulk_delay_samples']} samples, "
-          f"{result['nan_samples']} non-finite and {result['clipped_samples']} clipped samples")
+    if args.workers < 1:
+        raise UsageError(f"--workers {args.workers}: expected 1 or more")
+    if args.scheduler and args.scheduler_file:
+        raise UsageError("give --scheduler or --scheduler-file, not both")
+    if not (math.isfinite(args.chunk_s) and args.chunk_s > 0):
+        raise UsageError(f"--chunk-s {args.chunk_s:g}: expected a positive number of seconds")
+    warn = lambda line: sys.stderr.write(f"beamtap process: warning: {line}\n")  # noqa: E731
+    loaded = None if config is None else load_config(config)
+    if args.workers > 1 or args.scheduler or args.scheduler_file:
+        rc = campaign.run(loaded, inputs, args.out, args.workers, args.scheduler, args.scheduler_file, args.chunk_s,
+                          args.threads, args.allow_mismatch, start_utc, args.overwrite, warn)
+        if rc == 0:
+            print(f"wrote {args.out}: {len(campaign.expand_inputs(inputs))} input(s) processed")
+        return rc
+    if start_utc is not None and len(inputs) > 1:
+        raise UsageError("--start-utc dates one WAV file; give one input with it")
+    for result, folder in zip(campaign.run_serial(loaded, inputs, args.out, args.threads, args.allow_mismatch,
+                                                  start_utc, args.overwrite, warn),
+                              campaign.output_folders(Path(args.out), campaign.expand_inputs(inputs))):
+        confirmed = sum(1 for t in result["tracks"] if t["confirmed"])
+        print(f"wrote {folder}/beams.csv, power.csv, audio.wav, detections.csv, tracks.csv, summary.json: "
+              f"{result['frames_processed']} frames, {result['power_rows']} power rows, {confirmed} confirmed tracks, "
+              f"D = {result['bulk_delay_samples']} samples, "
+              f"{result['nan_samples']} non-finite and {result['clipped_samples']} clipped samples")
 
 
 def cmd_pattern(args):
@@ -318,8 +331,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = _add(sub, "process", cmd_process, "beamform a multichannel WAV offline with the config's beams")
     p.add_argument("inputs", nargs="+", metavar="INPUT",
-                   help="multichannel WAV (16/24/32-bit integer or 32-bit float), or a session folder "
-                        "(the older form CONFIG.toml INPUT also works)")
+                   help="multichannel WAVs (16/24/32-bit integer or 32-bit float), session folders, or folders of "
+                        "sessions; several go into one folder each under --out, with index.csv (the older form "
+                        "CONFIG.toml INPUT also works)")
     p.add_argument("--config", default=None, help=f"config file (or {BUILTIN}); a session's own config by default")
     p.add_argument("--start-utc", default=None, metavar="TIME",
                    help="UTC of a WAV's first sample (ISO 8601 or POSIX seconds) for the power table's time_utc")
@@ -328,7 +342,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", required=True, help="output folder for beams.csv, power.csv, audio.wav, summary.json")
     p.add_argument("--overwrite", action="store_true", help="replace outputs that already exist")
     p.add_argument("--threads", type=_threads, default=None, metavar="N",
-                   help="engine threads (default: [engine] threads, else every core; the output is the same)")
+                   help="engine threads (default: [engine] threads, else every core; 1 per Dask worker; the "
+                        "output is the same)")
+    p.add_argument("--workers", type=int, default=1, metavar="N",
+                   help="run on a Dask cluster of N worker processes started for this run (cluster extra); "
+                        "default 1: on this process, as before")
+    p.add_argument("--scheduler", default=None, metavar="tcp://HOST:PORT",
+                   help="run on an existing Dask cluster (its scheduler's address); inputs and --out must be "
+                        "on a filesystem every worker sees")
+    p.add_argument("--scheduler-file", default=None, metavar="PATH", help="the same, from Dask's scheduler file")
+    p.add_argument("--chunk-s", type=float, default=60.0, metavar="S",
+                   help="with --workers or --scheduler: seconds of stream per chunk (default 60)")
 
     p = _add(sub, "pattern", cmd_pattern, "theoretical array response against azimuth for one look direction")
     p.add_argument("config", nargs="?", default=None, help="config file (default: the built-in demo)")

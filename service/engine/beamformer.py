@@ -353,21 +353,32 @@ class Beamformer:
         self.resume(EngineState(next_sample=state.next_sample, power_origin=state.power_origin, n_fft=n_fft,
                                 history=frame, pending_start=(), pending_spec=()))
 
-    def reset(self, first_sample: int = 0) -> None:
+    def reset(self, first_sample: int = 0, power_origin: int | None = None) -> None:
         """Forget all history (after a gap) and restart at ``first_sample``.
 
-        Power blocks realign so that a block starts at ``first_sample``.
-        Pending power blocks are dropped; call :meth:`flush` first to keep them.
+        Power blocks realign so that a block starts at ``power_origin``
+        (default ``first_sample``). Pending power blocks are dropped; call
+        :meth:`flush` first to keep them. Starting later than the origin with
+        an empty history is how a stream is picked up in the middle: once
+        the frame has filled with real input (a warm-up of
+        :meth:`warmup_frames`), the output is the uninterrupted stream's.
         """
         n_fft = self._steer[1]
         # One history row per column: a frame is a contiguous (n_fft, rows) slice.
         self._buf = cache_aligned((self._history_frames(n_fft), self._basis.n_rows), np.float32, zero=True)
         self._pos = n_fft
         self._sample = int(first_sample)
-        self._power_origin = int(first_sample)
+        self._power_origin = int(first_sample if power_origin is None else power_origin)
         self._pending_start: list[int] = []
         self._pending_spec: list[np.ndarray] = []
         self._fade_from = None
+
+    def warmup_frames(self) -> int:
+        """Input frames after which an engine started mid-stream (:meth:`reset` with a
+        ``power_origin``) gives the uninterrupted stream's output: every frame it reads, every band
+        filter and every pending power batch then holds real input only."""
+        n_fft = self._steer[1]
+        return int(2 * n_fft + 2 * self.power_delay_samples + (self.power_batch_blocks + 2) * self.block_frames)
 
     def _history_frames(self, n_fft: int) -> int:
         # The last n_fft frames are moved to the front when the buffer is full: room for four

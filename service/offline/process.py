@@ -7,6 +7,7 @@ import queue
 import threading
 from collections import deque
 from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -60,24 +61,56 @@ def config_differences(stored: Config, given: Config) -> list:
     return out
 
 
-def process(config: Config | None, input_path, out_dir, allow_mismatch: bool = False, warn=None,
-            start_utc: float | None = None, threads: int | None = None) -> dict:
-    """Beamform a WAV file or a recorded session folder (the ``process`` command).
+@dataclass(frozen=True)
+class Segment:
+    """One WAV file of a run: its path, the stream index of its first frame, and its frames."""
 
-    ``config`` None takes a session's own stored config (a WAV needs one).
-    A given config that differs from a session's in array, channels, medium
+    path: str
+    first_sample: int
+    frames: int
+
+
+@dataclass(frozen=True)
+class Run:
+    """Frames contiguous in stream samples: a WAV file, or a session's segments between two gaps."""
+
+    first: int
+    frames: int
+    channels: int
+    sample_format: str
+    segments: tuple
+
+    @property
+    def end(self) -> int:
+        return self.first + self.frames
+
+
+@dataclass(frozen=True)
+class InputPlan:
+    """One input, checked and ready to beamform: its config, runs and UTC anchors."""
+
+    config: Config
+    source: str
+    input_format: str
+    runs: tuple
+    anchors: tuple = ()
+
+    @property
+    def frames(self) -> int:
+        return sum(r.frames for r in self.runs)
+
+
+def plan_input(config: Config | None, input_path, allow_mismatch: bool = False, warn=None,
+               start_utc: float | None = None) -> InputPlan:
+    """Check one input (a WAV file or a session folder) against ``config`` and lay out its runs.
+
+    ``config`` None takes a session's own stored config (a WAV needs one);
+    a given config that differs from a session's in array, channels, medium
     or sample rate is refused unless ``allow_mismatch``. ``warn`` (a
     callable taking one line) hears about segments shorter than the
-    manifest says. Outputs are created only once the inputs are checked.
-    ``start_utc`` (POSIX seconds) dates a WAV's first sample; a session's
-    rows are dated from its segments. ``threads`` (``--threads``) overrides
-    the config's engine threads (default offline: every core).
-    Returns the summary it writes to ``summary.json``.
+    manifest says. ``start_utc`` dates a WAV's first sample.
     """
-    out = Path(out_dir)
     warn = warn or (lambda line: None)
-    if KERNELS_MISSING:
-        warn(KERNELS_MISSING)
     if Path(input_path).is_dir():
         stored = session_config(input_path)
         if config is None:
@@ -90,28 +123,276 @@ def process(config: Config | None, input_path, out_dir, allow_mismatch: bool = F
             for d in diffs:
                 warn(f"{input_path}: {d} (processing anyway, --allow-mismatch)")
         runs, anchors = _session_runs(config, Path(input_path), warn)
-        _make_folder(out)
-        return _process_runs(config, runs, out, str(input_path), "session", anchors, threads)
+        return InputPlan(config, str(input_path), "session", runs, anchors)
     if config is None:
         raise UsageError(f"{input_path}: a WAV file needs --config FILE (only a session holds its own config)")
-    with WavReader(input_path, mapped=True) as reader:
+    with WavReader(input_path) as reader:
         _check_input(config, input_path, reader.samplerate_hz, reader.channels)
-        total = reader.frames
         if reader.truncated:
-            warn(f"{input_path}: the header promises {reader.frames_promised} frames, the file holds {total}; "
-                 "processing what is there")
-        _make_folder(out)
+            warn(f"{input_path}: the header promises {reader.frames_promised} frames, the file holds "
+                 f"{reader.frames}; processing what is there")
+        run = Run(0, reader.frames, reader.channels, reader.sample_format,
+                  (Segment(str(reader.path), 0, reader.frames),))
+        anchors = () if start_utc is None else ((0, float(start_utc)),)
+        return InputPlan(config, str(reader.path), reader.sample_format, (run,), anchors)
 
-        def blocks():
-            while True:
-                x, clipped = reader.read(_read_frames(config))
+
+def process(config: Config | None, input_path, out_dir, allow_mismatch: bool = False, warn=None,
+            start_utc: float | None = None, threads: int | None = None) -> dict:
+    """Beamform a WAV file or a recorded session folder (the ``process`` command), on this machine.
+
+    See :func:`plan_input` for ``config``, ``allow_mismatch``, ``warn`` and
+    ``start_utc``. Outputs are created only once the inputs are checked.
+    ``threads`` (``--threads``) overrides the config's engine threads
+    (default offline: every core). Returns the summary it writes to
+    ``summary.json``.
+    """
+    warn = warn or (lambda line: None)
+    if KERNELS_MISSING:
+        warn(KERNELS_MISSING)
+    plan = plan_input(config, input_path, allow_mismatch, warn, start_utc)
+    out = Path(out_dir)
+    _make_folder(out)
+    config = plan.config
+    bf = make_beamformer(config, threads=config.engine_threads(offline=True, override=threads))
+    counts = new_counts()
+    bar = Progress(plan.frames, config.input.samplerate_hz)
+    # About half a second of outputs per hand-over to the writer thread.
+    batch_blocks = max(2, int(config.input.samplerate_hz / 2 / config.input.block_frames))
+    with Outputs(config, bf, out, plan.anchors) as outputs, _Writer() as writer, bf:
+        batch_audio, batch_firsts, batch_power = [], [], []
+
+        def hand_over():
+            writer.submit(outputs.write_batch, batch_audio[:], batch_firsts[:], batch_power[:])
+            batch_audio.clear(), batch_firsts.clear(), batch_power.clear()
+
+        def on_audio(a):
+            batch_audio.append(a)
+            if len(batch_audio) + len(batch_firsts) >= batch_blocks:
+                hand_over()
+
+        def on_power(firsts, power_db):
+            batch_firsts.append(firsts)
+            batch_power.append(power_db)
+
+        end_prev = None
+        for run in plan.runs:
+            if end_prev is not None:  # a gap: silence in audio.wav keeps it on the session's time axis
+                hand_over()
+                writer.submit(outputs.gap, run.first - end_prev)
+                counts["gaps"] += 1
+                counts["gap_frames"] += run.first - end_prev
+            beamform_span(bf, run, run.first, run.end, counts, on_audio, on_power,
+                          read_ahead=bf.threads < available_cores(), progress=bar)
+            hand_over()
+            end_prev = run.end
+    return write_summary(out, plan, counts, outputs, bf)
+
+
+def new_counts() -> dict:
+    return {"nan": 0, "clipped": 0, "frames": 0, "power_rows": 0, "gaps": 0, "gap_frames": 0}
+
+
+def read_span(run: Run, start: int, stop: int, frames_per_read: int):
+    """``(block, clipped)`` reads of stream frames ``start`` to ``stop`` of ``run``, in order.
+
+    Each read is at most ``frames_per_read`` frames and never spans two
+    files; float WAVs are memory-mapped (see :class:`WavReader`).
+    """
+    for seg in run.segments:
+        lo, hi = max(start, seg.first_sample), min(stop, seg.first_sample + seg.frames)
+        if lo >= hi:
+            continue
+        with WavReader(seg.path, mapped=True) as r:
+            r.seek(lo - seg.first_sample)
+            left = hi - lo
+            while left > 0:
+                x, clipped = r.read(min(frames_per_read, left))
                 if len(x) == 0:
-                    return
+                    raise UsageError(f"{seg.path}: ends {left} frames early (the file shrank while being read)")
+                left -= len(x)
                 yield x, clipped
 
-        runs = [(0, total, reader.channels, reader.sample_format, blocks())]
-        anchors = [] if start_utc is None else [(0, float(start_utc))]
-        return _process_runs(config, runs, out, reader.path, reader.sample_format, anchors, threads)
+
+def beamform_span(bf, run: Run, own_from: int, own_to: int, counts: dict, on_audio, on_power,
+                  read_ahead: bool = False, progress=None) -> None:
+    """The engine's output for input frames ``own_from`` to ``own_to`` of ``run``, as an
+    uninterrupted run would give it.
+
+    Starting inside the run, the engine is started early by
+    :meth:`Beamformer.warmup_frames` (outputs discarded) with its power
+    blocks aligned to the run's start; it reads on past ``own_to`` as far as
+    the owned outputs need, and at the run's end pushes the bulk delay out
+    as a whole run does. ``on_audio(frames)`` gets the audio beams for input
+    wavefronts ``own_from`` to ``own_to`` (output samples ``own_from + D``
+    on; a whole run's audio has the input's length), ``on_power(first_samples,
+    power_db)`` the rows whose span starts in ``own_from`` to ``own_to``
+    and ends, with the power delay and a block, within the run (rows
+    computed from the zero tail are left out). ``counts`` adds the owned
+    input frames, their non-finite and clipped samples, and the rows.
+    """
+    d = bf.bulk_delay_samples
+    block = bf.block_frames
+    reads = _read_frames(bf)
+    warm_from = own_from if own_from == run.first else max(run.first, own_from - bf.warmup_frames())
+    if warm_from == run.first:
+        bf.reset(run.first)
+    else:
+        bf.reset(warm_from, power_origin=run.first)
+    stop_at = min(run.end, own_to + d + bf.power_delay_samples + (bf.power_batch_blocks + 1) * block)
+    audio_from, audio_to = own_from + d, own_to + d
+    float_input = run.sample_format == "float32"
+
+    def emit(result, owned: bool):
+        a, n0 = result.audio, result.first_sample
+        lo, hi = max(audio_from - n0, 0), min(audio_to - n0, len(a))
+        if lo < hi and a.shape[1]:
+            on_audio(a[lo:hi] if (lo, hi) != (0, len(a)) else a)
+        firsts = result.power_first_sample
+        if len(firsts):
+            keep = (firsts >= own_from) & (firsts < own_to) & (firsts + (bf.power_delay_samples + block) <= run.end)
+            if keep.all():
+                on_power(firsts, result.power_db)
+            elif keep.any():
+                on_power(firsts[keep], result.power_db[keep])
+            counts["power_rows"] += int(keep.sum())
+        if owned:
+            counts["nan"] += result.nan_count
+            if float_input:
+                counts["clipped"] += result.clip_count
+
+    def pieces(start, stop):
+        items = read_span(run, start, stop, reads)
+        return _read_ahead(items) if read_ahead else items
+
+    for x, _ in pieces(warm_from, own_from):
+        emit(bf.process(x), False)
+    for x, clipped in pieces(own_from, own_to):
+        counts["clipped"] += clipped  # integer input: full-scale codes
+        counts["frames"] += len(x)
+        emit(bf.process(x), True)
+        if progress is not None:
+            progress.update(counts["frames"])
+    for x, _ in pieces(own_to, stop_at):
+        emit(bf.process(x), False)
+    if stop_at == run.end:
+        # Push the last D frames of beam audio out so audio.wav has the input's length.
+        emit(bf.process(np.zeros((d, run.channels), np.float32)), False)
+        emit(bf.flush(), False)
+
+
+class Outputs:
+    """The output folder's files: ``power.csv`` (with ``beams.csv``, ``bands.csv``), ``audio.wav``,
+    ``detections.csv``, ``tracks.csv``; rows go through the detection stage in stream order.
+
+    Used as a context manager; :meth:`write_batch` and :meth:`gap` must be
+    called in stream order (from one thread at a time).
+    """
+
+    def __init__(self, config: Config, bf, out: Path, anchors=()):
+        self.config, self.out = config, Path(out)
+        beams = config.beams
+        self.band_delays = [int(ev.filter.group_delay_samples) for ev in bf.band_filters]
+        self.power_csv = self.out / "power.csv"
+        powertable.write_sidecars(self.power_csv, beams.power_deg, beams.bands_hz, self.band_delays)
+        self.utc_of = _utc_mapper(anchors, config.input.samplerate_hz)
+        self.n_audio = len(beams.audio_deg)
+        self.stage = make_detection(config, bf.beams, bf.band_filters)
+        self.track_log: dict = {}  # track id -> its summary (first and last seen, confirmed, detections)
+        self._files = []
+
+    def __enter__(self) -> "Outputs":
+        try:
+            self.pf = open(self.power_csv, "w", encoding="utf-8")
+            self._files.append(self.pf)
+            self.df = open(self.out / "detections.csv", "w", encoding="utf-8")
+            self._files.append(self.df)
+            self.tf = open(self.out / "tracks.csv", "w", encoding="utf-8")
+            self._files.append(self.tf)
+            self.audio_w = WavWriter(self.out / "audio.wav", self.config.input.samplerate_hz, self.n_audio) \
+                if self.n_audio else None
+        except BaseException:
+            self.__exit__(None, None, None)
+            raise
+        self.pf.write(powertable.header(len(self.config.beams.bands_hz), len(self.config.beams.power_deg)) + "\n")
+        self.df.write(tracktable.header(tracktable.DETECTION_COLUMNS))
+        self.tf.write(tracktable.header(tracktable.TRACK_COLUMNS))
+        return self
+
+    def __exit__(self, *exc) -> None:
+        try:
+            if getattr(self, "audio_w", None) is not None:
+                self.audio_w.close(sync=False)  # made again by rerunning: no wait for the disk
+        finally:
+            for f in self._files:
+                f.close()
+
+    def gap(self, frames: int) -> None:
+        """Silence (sparse on disk) in ``audio.wav`` for frames the input does not have."""
+        if self.audio_w is not None:
+            self.audio_w.skip(frames)
+
+    def write_batch(self, audio: list, firsts: list, power_db: list) -> None:
+        """Audio blocks, and power rows with their first samples, in stream order."""
+        if audio and self.audio_w is not None:
+            self.audio_w.write(np.concatenate(audio) if len(audio) > 1 else audio[0])
+        if firsts:
+            firsts = np.concatenate(firsts)
+            power_db = np.concatenate(power_db)
+            utcs = [self.utc_of(n) for n in firsts]
+            self.pf.write(powertable.rows_text(firsts, utcs, power_db))
+            self._detect(firsts, utcs, power_db)
+
+    def _detect(self, firsts, utcs, power_db) -> None:
+        det_text, trk_text = [], []
+        for first, utc, dets, tracks, _ in self.stage.rows(power_db, firsts, utcs):
+            det_text.append(tracktable.detections_text(dets))
+            trk_text.append(tracktable.tracks_text(first, utc, tracks))
+            for t in tracks:
+                log = self.track_log.setdefault(t["track"], {"track": t["track"], "first_sample": t["first_sample"],
+                                                             "first_utc": t["first_utc"], "confirmed": False})
+                log.update(last_sample=t["last_sample"], last_utc=t["last_utc"], detections=t["detections"],
+                           last_bearing_deg=t["bearing_deg"], last_rate_deg_per_s=t["rate_deg_per_s"],
+                           last_snr_db=t["snr_db"])
+                if t["state"] == "confirmed" and not log["confirmed"]:
+                    log.update(confirmed=True, confirmed_sample=int(first), confirmed_bearing_deg=t["bearing_deg"])
+        self.df.write("".join(det_text))
+        self.tf.write("".join(trk_text))
+
+
+def write_summary(out: Path, plan: InputPlan, counts: dict, outputs: Outputs, bf, extra: dict | None = None) -> dict:
+    """``summary.json`` of a finished input; returns it."""
+    config = plan.config
+    result = {
+        "software": f"beamtap {__version__}",
+        "input": plan.source,
+        "input_format": plan.input_format,
+        "config_file": config.where,
+        "config_sha256": config.sha256,
+        "config": config.text,
+        "samplerate_hz": config.input.samplerate_hz,
+        "bulk_delay_samples": bf.bulk_delay_samples,
+        "band_filter_delay_samples": outputs.band_delays,
+        "power_delay_samples": bf.power_delay_samples,
+        "power_time_axis": "first_sample is the stream index of the first input sample each power row "
+                           "describes (bulk delay and band filter delays removed; all bands of a row describe "
+                           "the same span); time_utc its UTC time when known; rows cover whole blocks only",
+        "first_sample": int(plan.runs[0].first) if plan.runs else 0,
+        "frames_processed": counts["frames"],
+        "gaps": counts["gaps"],
+        "gap_frames": counts["gap_frames"],
+        "power_rows": counts["power_rows"],
+        "nan_samples": counts["nan"],
+        "clipped_samples": counts["clipped"],
+        "engine_threads": bf.threads,
+        "detect": config.detect.as_dict(),
+        "detections": "detections.csv (first_sample, time_utc, band, beam, bearing_deg, level_db, snr_db)",
+        "tracks": sorted(outputs.track_log.values(), key=lambda t: t["track"]),
+        "summary": summary(config, bf),
+        **(extra or {}),
+    }
+    (out / "summary.json").write_text(json.dumps(result, indent=2, default=json_default))
+    return result
 
 
 def _utc_mapper(anchors, fs: float):
@@ -148,7 +429,7 @@ def _check_input(config: Config, where, samplerate_hz, channels):
 
 
 def _session_runs(config: Config, folder: Path, warn):
-    """Contiguous runs of a session's raw segments: (first, frames, channels, format, blocks)."""
+    """Contiguous runs of a session's raw segments, and the segments' UTC anchors."""
     from beamtap.session import MANIFEST, segments  # noqa: PLC0415
 
     if not (folder / MANIFEST).exists():
@@ -174,28 +455,17 @@ def _session_runs(config: Config, folder: Path, warn):
             current = []
         current.append(seg)
     runs.append(current)
-    block = _read_frames(config)
-
-    def blocks(run):
-        for seg in run:
-            with WavReader(folder / seg["file"], mapped=True) as r:
-                left = seg["frames"]
-                while left > 0:
-                    x, clipped = r.read(min(block, left))
-                    if len(x) == 0:
-                        break
-                    left -= len(x)
-                    yield x, clipped
-
-    anchors = [(int(seg["first_sample"]), float(seg["utc"])) for seg in segs if "utc" in seg]
-    return [(run[0]["first_sample"], sum(s["frames"] for s in run), run[0]["channels"],
-             run[0].get("sample_format") or "float32", blocks(run)) for run in runs], anchors
+    anchors = tuple((int(seg["first_sample"]), float(seg["utc"])) for seg in segs if "utc" in seg)
+    return tuple(Run(int(run[0]["first_sample"]), sum(int(s["frames"]) for s in run), int(run[0]["channels"]),
+                     run[0].get("sample_format") or "float32",
+                     tuple(Segment(str((folder / s["file"]).resolve()), int(s["first_sample"]), int(s["frames"]))
+                           for s in run)) for run in runs), anchors
 
 
-def _read_frames(config: Config) -> int:
+def _read_frames(bf) -> int:
     """Frames per file read: eight engine blocks. The engine takes any number of frames per call
     with the same output, and fewer, larger calls cost less Python around the compiled loops."""
-    return 8 * config.input.block_frames
+    return 8 * bf.block_frames
 
 
 def _read_ahead(items, depth: int = 4):
@@ -275,144 +545,3 @@ class _Writer:
             for f in self._pending:
                 f.cancel()
             self._pool.shutdown(wait=True)
-
-
-def _process_runs(config: Config, runs, out: Path, source: str, input_format: str, anchors=(),
-                  threads: int | None = None) -> dict:
-    bf = make_beamformer(config, threads=config.engine_threads(offline=True, override=threads))
-    threads_used = bf.threads
-    fs = config.input.samplerate_hz
-    d = bf.bulk_delay_samples
-    block = config.input.block_frames
-    beams = config.beams
-    band_delays = [int(ev.filter.group_delay_samples) for ev in bf.band_filters]
-    power_csv = out / "power.csv"
-    powertable.write_sidecars(power_csv, beams.power_deg, beams.bands_hz, band_delays)
-    utc_of = _utc_mapper(anchors, fs)
-    counts = {"nan": 0, "clipped": 0, "frames": 0, "power_rows": 0, "gaps": 0, "gap_frames": 0}
-    n_audio = len(beams.audio_deg)
-    audio_w = WavWriter(out / "audio.wav", fs, n_audio) if n_audio else None
-    origin = runs[0][0] if runs else 0
-    total = sum(r[1] for r in runs)
-    batch_blocks = max(2, int(fs / 2 / block))  # about half a second of outputs per write
-    bar = Progress(total, fs)
-    batch_audio, batch_firsts, batch_power = [], [], []
-    stage = make_detection(config, bf.beams, bf.band_filters)
-    track_log: dict = {}  # track id -> its summary (first and last seen, confirmed, detections)
-
-    def detect_rows(firsts, utcs, power_db):
-        """Detections and tracks of the batch's rows (on the writer thread, in order), as CSV."""
-        det_text, trk_text = [], []
-        for first, utc, dets, tracks, _ in stage.rows(power_db, firsts, utcs):
-            det_text.append(tracktable.detections_text(dets))
-            trk_text.append(tracktable.tracks_text(first, utc, tracks))
-            for t in tracks:
-                log = track_log.setdefault(t["track"], {"track": t["track"], "first_sample": t["first_sample"],
-                                                        "first_utc": t["first_utc"], "confirmed": False})
-                log.update(last_sample=t["last_sample"], last_utc=t["last_utc"], detections=t["detections"],
-                           last_bearing_deg=t["bearing_deg"], last_rate_deg_per_s=t["rate_deg_per_s"],
-                           last_snr_db=t["snr_db"])
-                if t["state"] == "confirmed" and not log["confirmed"]:
-                    log.update(confirmed=True, confirmed_sample=int(first), confirmed_bearing_deg=t["bearing_deg"])
-        df.write("".join(det_text))
-        tf.write("".join(trk_text))
-
-    def write_batch(audio, firsts, power_db):
-        if audio:
-            audio_w.write(np.concatenate(audio))
-        if firsts:
-            firsts = np.concatenate(firsts)
-            power_db = np.concatenate(power_db)
-            utcs = [utc_of(n) for n in firsts]
-            pf.write(powertable.rows_text(firsts, utcs, power_db))
-            detect_rows(firsts, utcs, power_db)
-
-    def hand_over():
-        """The collected outputs to the writer thread: one hand-over per half second of audio."""
-        writer.submit(write_batch, batch_audio[:], batch_firsts[:], batch_power[:])
-        batch_audio.clear(), batch_firsts.clear(), batch_power.clear()
-
-    try:
-        with (open(power_csv, "w", encoding="utf-8") as pf,
-              open(out / "detections.csv", "w", encoding="utf-8") as df,
-              open(out / "tracks.csv", "w", encoding="utf-8") as tf, _Writer() as writer, bf):
-            pf.write(powertable.header(len(beams.bands_hz), len(beams.power_deg)) + "\n")
-            df.write(tracktable.header(tracktable.DETECTION_COLUMNS))
-            tf.write(tracktable.header(tracktable.TRACK_COLUMNS))
-            end_prev = None
-            for first, frames, channels, fmt, blocks in runs:
-                if end_prev is not None:  # a gap: silence in audio.wav keeps it on the session's time axis
-                    gap = first - end_prev
-                    counts["gaps"] += 1
-                    counts["gap_frames"] += gap
-                    if audio_w is not None:
-                        hand_over()
-                        writer.submit(audio_w.skip, gap)  # silence, sparse on disk
-                bf.reset(first)
-                run_end = first + frames
-                skip = d  # the first D output frames precede the run's first input frame
-
-                def emit(result):
-                    nonlocal skip
-                    if audio_w is not None and len(result.audio) > skip:
-                        batch_audio.append(result.audio[skip:])
-                    skip = max(0, skip - len(result.audio))
-                    # rows computed from input only (not from the zero tail that flushes the audio)
-                    firsts = result.power_first_sample
-                    if len(firsts):
-                        keep = firsts + (bf.power_delay_samples + block) <= run_end
-                        if keep.all():
-                            batch_firsts.append(firsts)
-                            batch_power.append(result.power_db)
-                        elif keep.any():
-                            batch_firsts.append(firsts[keep])
-                            batch_power.append(result.power_db[keep])
-                        counts["power_rows"] += int(keep.sum())
-                    counts["nan"] += result.nan_count
-                    if fmt == "float32":
-                        counts["clipped"] += result.clip_count
-                    if len(batch_audio) + len(batch_firsts) >= batch_blocks:
-                        hand_over()
-
-                for x, clipped in (_read_ahead(blocks) if bf.threads < available_cores() else blocks):
-                    counts["clipped"] += clipped  # integer input: full-scale codes
-                    counts["frames"] += len(x)
-                    emit(bf.process(x))
-                    bar.update(counts["frames"])
-                # Push the last D frames of beam audio out so audio.wav has the input's length.
-                emit(bf.process(np.zeros((d, channels), np.float32)))
-                emit(bf.flush())
-                hand_over()
-                end_prev = run_end
-    finally:
-        if audio_w is not None:
-            audio_w.close(sync=False)  # made again by rerunning: no wait for the disk
-    result = {
-        "software": f"beamtap {__version__}",
-        "input": source,
-        "input_format": input_format,
-        "config_file": config.where,
-        "config_sha256": config.sha256,
-        "config": config.text,
-        "samplerate_hz": fs,
-        "bulk_delay_samples": d,
-        "band_filter_delay_samples": band_delays,
-        "power_delay_samples": bf.power_delay_samples,
-        "power_time_axis": "first_sample is the stream index of the first input sample each power row "
-                           "describes (bulk delay and band filter delays removed; all bands of a row describe "
-                           "the same span); time_utc its UTC time when known; rows cover whole blocks only",
-        "first_sample": int(origin),
-        "frames_processed": counts["frames"],
-        "gaps": counts["gaps"],
-        "gap_frames": counts["gap_frames"],
-        "power_rows": counts["power_rows"],
-        "nan_samples": counts["nan"],
-        "clipped_samples": counts["clipped"],
-        "engine_threads": threads_used,
-        "detect": config.detect.as_dict(),
-        "detections": "detections.csv (first_sample, time_utc, band, beam, bearing_deg, level_db, snr_db)",
-        "tracks": sorted(track_log.values(), key=lambda t: t["track"]),
-        "summary": summary(config, bf),
-    }
-    (out / "summary.json").write_text(json.dumps(result, indent=2, default=json_default))
-    return result

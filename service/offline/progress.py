@@ -25,7 +25,8 @@ class Progress:
         self.shown = tty and self.total / self.fs > min_s
         self._start = self._last = time.monotonic()
 
-    def update(self, done: int) -> None:
+    def update(self, done: int, note: str = "") -> None:
+        """``done`` frames of the total; ``note`` is shown after the speed (e.g. chunks done)."""
         if not self.shown:
             return
         now = time.monotonic()
@@ -36,7 +37,7 @@ class Progress:
         filled = int(width * min(done, self.total) / max(self.total, 1))
         speed = done / self.fs / max(now - self._start, 1e-9)
         self.stream.write(f"\r[{'#' * filled}{'.' * (width - filled)}] {done / self.fs:7.1f} / "
-                          f"{self.total / self.fs:.1f} s  {speed:5.1f}x real time")
+                          f"{self.total / self.fs:.1f} s  {speed:5.1f}x real time{'  ' + note if note else ''}")
         if done >= self.total:
             self.stream.write("\n")
         self.stream.flush()
