@@ -70,10 +70,25 @@ def steering_spectra(delays_samples: np.ndarray, weights: np.ndarray, n_fft: int
     """
     first_tap, taps = fracdelay.kernel(delays_samples)
     bins = np.asarray(bins, dtype=np.int64)
+    n_bins = len(bins)
     j = np.arange(taps.shape[-1])
     # Exact twiddles for whole-sample offsets by table lookup (no large exp).
     table = np.exp(-2j * np.pi * np.arange(n_fft) / n_fft)
-    local = taps.reshape(-1, taps.shape[-1]) @ table[np.outer(j, bins) % n_fft]  # (B*M, K)
-    shift = table[(first_tap.reshape(-1, 1) * bins[None, :]) % n_fft]
-    h = (local * shift * weights.reshape(-1, 1)).reshape(delays_samples.shape + (len(bins),))
-    return np.ascontiguousarray(np.moveaxis(h, -1, 0)).astype(np.complex64)
+    twiddles = table[np.outer(j, bins) % n_fft]
+    # Real taps times complex twiddles as one real product (a quarter of the complex one's work).
+    twiddles_ri = np.concatenate([twiddles.real, twiddles.imag], axis=1)
+    taps = taps.reshape(-1, taps.shape[-1])
+    first = first_tap.reshape(-1)
+    w = weights.reshape(-1)
+    out = np.empty((n_bins, len(taps)), np.complex64)
+    # Filters a few hundred at a time: the temporaries stay small and are reused, where whole-array
+    # temporaries (tens of MB for a large fan) cost more in fresh memory than in arithmetic.
+    step = 512
+    for lo in range(0, len(taps), step):
+        part = slice(lo, lo + step)
+        ri = taps[part] @ twiddles_ri
+        local = ri[:, :n_bins] + 1j * ri[:, n_bins:]
+        local *= table[(first[part, None] * bins[None, :]) % n_fft]
+        local *= w[part, None]
+        out[:, part] = local.T
+    return out.reshape((n_bins,) + delays_samples.shape)

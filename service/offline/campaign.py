@@ -79,13 +79,35 @@ class ChunkTask:
         return f"{self.source}, {first.own_from / fs:.3f}–{last.own_to / fs:.3f} s of stream"
 
 
+#: Engines a worker process has built, by (config text, where, threads): building one (steering
+#: spectra, band filters) costs a good part of a second for a large array, far more than a chunk's
+#: warm-up, and every chunk of a campaign asks for the same. Each span starts with a reset.
+_ENGINES: dict = {}
+
+
+def _engine(config_text: str, where: str, threads: int):
+    """(config, engine) for a chunk, built once per worker process; adaptive engines are never
+    shared (their covariance average is state a reset does not clear), nor is more than one kept."""
+    key = (config_text, where, threads)
+    if key in _ENGINES:
+        return _ENGINES[key]
+    config = loads(config_text, where)
+    bf = make_beamformer(config, threads=threads)
+    if config.beams.method == "das":
+        for old in _ENGINES.values():
+            old[1].close()
+        _ENGINES.clear()
+        _ENGINES[key] = (config, bf)
+    return config, bf
+
+
 def run_chunk(task: ChunkTask) -> dict:
     """Beamform one chunk into its part folder (runs on a worker); returns its counts."""
     started = time.perf_counter()
-    config = loads(task.config_text, task.config_where)
+    config, bf = _engine(task.config_text, task.config_where, task.threads)
     counts = new_counts()
     parts = []
-    with make_beamformer(config, threads=task.threads) as bf:
+    try:
         for k, span in enumerate(task.spans):
             part = Path(task.part_dir) / f"span-{k:03d}"
             part.mkdir(parents=True, exist_ok=True)
@@ -98,6 +120,9 @@ def run_chunk(task: ChunkTask) -> dict:
             np.save(part / "firsts.npy", np.concatenate(firsts) if firsts else np.zeros(0, np.int64))
             np.save(part / "power.npy", np.concatenate(power) if power else np.zeros((0, n_bands, n_beams), np.float32))
             parts.append((span.run_index, span.own_from, str(part)))
+    finally:
+        if _ENGINES.get((task.config_text, task.config_where, task.threads), (None, None))[1] is not bf:
+            bf.close()
     return {"counts": counts, "parts": parts, "seconds": time.perf_counter() - started,
             "frames": sum(s.own_to - s.own_from for s in task.spans)}
 
@@ -105,7 +130,7 @@ def run_chunk(task: ChunkTask) -> dict:
 def finish_input(plan: InputPlan, out: str, extra: dict, *chunks: dict) -> dict:
     """Stitch an input's parts, in stream order, into its outputs and ``summary.json`` (runs on a
     worker, after the input's chunks); detection and tracking go over the stitched rows."""
-    config = loads(plan.config.text, plan.config.where)
+    config, bf = _engine(plan.config.text, plan.config.where, 1)
     out = Path(out)
     counts = new_counts()
     for c in chunks:
@@ -113,7 +138,7 @@ def finish_input(plan: InputPlan, out: str, extra: dict, *chunks: dict) -> dict:
             counts[k] += c["counts"][k]
     parts = sorted(p for c in chunks for p in c["parts"])
     n_audio = len(config.beams.audio_deg)
-    with make_beamformer(config, threads=1) as bf, Outputs(config, bf, out, plan.anchors) as outputs:
+    with Outputs(config, bf, out, plan.anchors) as outputs:
         end_prev = None
         for i, run in enumerate(plan.runs):
             if end_prev is not None:
@@ -311,20 +336,30 @@ def run_serial(config, inputs, out, threads=None, allow_mismatch=False, start_ut
                warn=None) -> list[dict]:
     """``--workers 1``: each input in turn on this machine (the engine on ``threads``, every core by
     default); several inputs go into folders of their own with ``index.csv``. Returns the summaries."""
-    from .process import process  # noqa: PLC0415
+    from ..engine.beamformer import KERNELS_MISSING  # noqa: PLC0415
+    from .process import process_plan  # noqa: PLC0415
 
+    if KERNELS_MISSING and warn is not None:
+        warn(KERNELS_MISSING)
     paths = expand_inputs(inputs)
     folders = output_folders(Path(out), paths)
-    plans = [plan_input(config, p, allow_mismatch, None, start_utc) for p in paths]  # every input checked first
+    plans = [plan_input(config, p, allow_mismatch, warn, start_utc) for p in paths]  # every input checked first
     for f in folders:
         outrules.check_folder(f, overwrite, PROCESS_OUTPUTS)
     results, status = [], ["queued"] * len(paths)
+    engines: dict = {}  # one engine per distinct config: building one costs more than a short input
     try:
-        for k, (p, f) in enumerate(zip(paths, folders)):
+        for k, (plan, f) in enumerate(zip(plans, folders)):
             status[k] = "failed"
-            results.append(process(config, p, f, allow_mismatch, warn, start_utc, threads))
+            key = (plan.config.text, plan.config.where)
+            if key not in engines:
+                engines[key] = make_beamformer(plan.config,
+                                               threads=plan.config.engine_threads(offline=True, override=threads))
+            results.append(process_plan(plan, f, engines[key]))
             status[k] = "done"
     finally:
+        for bf in engines.values():
+            bf.close()
         if len(paths) > 1:
             _write_index(Path(out), plans, folders, status)
     return results

@@ -151,15 +151,21 @@ def process(config: Config | None, input_path, out_dir, allow_mismatch: bool = F
     if KERNELS_MISSING:
         warn(KERNELS_MISSING)
     plan = plan_input(config, input_path, allow_mismatch, warn, start_utc)
+    with make_beamformer(plan.config, threads=plan.config.engine_threads(offline=True, override=threads)) as bf:
+        return process_plan(plan, out_dir, bf)
+
+
+def process_plan(plan: InputPlan, out_dir, bf) -> dict:
+    """Beamform a checked input with the engine ``bf`` (built for ``plan.config``; it is reset per
+    run, so one engine serves input after input); returns the summary."""
     out = Path(out_dir)
     _make_folder(out)
     config = plan.config
-    bf = make_beamformer(config, threads=config.engine_threads(offline=True, override=threads))
     counts = new_counts()
     bar = Progress(plan.frames, config.input.samplerate_hz)
     # About half a second of outputs per hand-over to the writer thread.
     batch_blocks = max(2, int(config.input.samplerate_hz / 2 / config.input.block_frames))
-    with Outputs(config, bf, out, plan.anchors) as outputs, _Writer() as writer, bf:
+    with Outputs(config, bf, out, plan.anchors) as outputs, _Writer() as writer:
         batch_audio, batch_firsts, batch_power = [], [], []
 
         def hand_over():
