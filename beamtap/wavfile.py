@@ -347,3 +347,46 @@ class WavWriter:
 
     def __exit__(self, *exc):
         self.close()
+
+
+class WavPatcher:
+    """Write frames into an existing float32 WAV in place (the file keeps its length and header).
+
+    How parallel writers fill one output: the file is made first at its final
+    length (a :class:`WavWriter` that :meth:`~WavWriter.skip`\\ s the whole
+    length: sparse silence), then each writer puts its own frames at their
+    place. Writing past the end is refused, so a wrong offset cannot grow
+    the file or corrupt its header.
+
+    Parameters
+    ----------
+    path : path
+    channels : int
+        Channels the caller writes (must be the file's).
+    """
+
+    def __init__(self, path, channels: int):
+        with WavReader(path) as r:
+            if r.sample_format != "float32" or r.channels != channels:
+                raise WavError(f"{path}: {r.channels} channels of {r.sample_format}, expected {channels} of float32")
+            self.frames, self._start, self.channels = r.frames, r._data_start, r.channels
+        self.path = str(path)
+        self._f = open(self.path, "r+b")
+
+    def write(self, frame: int, block: np.ndarray) -> None:
+        """Frames ``block`` (n, channels) from frame ``frame`` on."""
+        block = np.ascontiguousarray(block, "<f4")
+        if block.ndim != 2 or block.shape[1] != self.channels:
+            raise ValueError(f"block of shape {block.shape}: expected (frames, {self.channels})")
+        if frame < 0 or frame + len(block) > self.frames:
+            raise WavError(f"{self.path}: frames {frame} to {frame + len(block)} are outside its {self.frames}")
+        os.pwrite(self._f.fileno(), block.tobytes(), self._start + 4 * self.channels * frame)
+
+    def close(self) -> None:
+        self._f.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()

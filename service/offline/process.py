@@ -295,7 +295,7 @@ class Outputs:
     called in stream order (from one thread at a time).
     """
 
-    def __init__(self, config: Config, bf, out: Path, anchors=()):
+    def __init__(self, config: Config, bf, out: Path, anchors=(), audio: bool = True):
         self.config, self.out = config, Path(out)
         beams = config.beams
         self.band_delays = [int(ev.filter.group_delay_samples) for ev in bf.band_filters]
@@ -303,6 +303,7 @@ class Outputs:
         powertable.write_sidecars(self.power_csv, beams.power_deg, beams.bands_hz, self.band_delays)
         self.utc_of = _utc_mapper(anchors, config.input.samplerate_hz)
         self.n_audio = len(beams.audio_deg)
+        self.audio = audio  # False: audio.wav is written by others (the chunks of a Dask run)
         self.stage = make_detection(config, bf.beams, bf.band_filters)
         self.track_log: dict = {}  # track id -> its summary (first and last seen, confirmed, detections)
         self._files = []
@@ -316,7 +317,7 @@ class Outputs:
             self.tf = open(self.out / "tracks.csv", "w", encoding="utf-8")
             self._files.append(self.tf)
             self.audio_w = WavWriter(self.out / "audio.wav", self.config.input.samplerate_hz, self.n_audio) \
-                if self.n_audio else None
+                if self.n_audio and self.audio else None
         except BaseException:
             self.__exit__(None, None, None)
             raise
