@@ -175,10 +175,10 @@ def test_input_missing_on_a_worker_is_reported_not_hung(data):
             f'mount -t tmpfs none "{data["tmp"]}" && exec "$0" "$@"']
     out = Path(str(data["tmp"]) + "-out") / "blind"
     out.parent.mkdir(exist_ok=True)
-    with dask_cluster(out.parent, workers=1, prefix=hide) as (address, _):
+    with dask_cluster(out.parent, workers=1, prefix=hide) as (_, scheduler_file):
         started = time.monotonic()
-        r = _beamtap("process", data["wav"], "--config", data["cfg"], "--out", out, "--scheduler", address,
-                     "--chunk-s", 4.0, timeout=180)
+        r = _beamtap("process", data["wav"], "--config", data["cfg"], "--out", out, "--scheduler-file",
+                     scheduler_file, "--chunk-s", 4.0, timeout=180)
     assert r.returncode == 1, r.stderr
     assert time.monotonic() - started < 120
     errors = [line for line in r.stderr.splitlines() if line.startswith("beamtap process: error:")]

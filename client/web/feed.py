@@ -73,10 +73,11 @@ def _finite(o):
 
 
 class _Row:
-    __slots__ = ("db", "linear", "count", "table", "utc")
+    __slots__ = ("db", "linear", "count", "table", "utc", "frame")
 
-    def __init__(self, db: np.ndarray, table: int, utc):
+    def __init__(self, db: np.ndarray, table: int, utc, frame: bytes | None = None):
         self.db, self.linear, self.count, self.table, self.utc = db, None, 1, table, utc
+        self.frame = frame  # the row already encoded (shared by every page), until merged
 
     def absorb(self, db: np.ndarray) -> bool:
         """Average ``db`` into this row (in power); False when the shapes differ."""
@@ -86,6 +87,7 @@ class _Row:
             self.linear = 10.0 ** (self.db.astype(np.float64) / 10.0)
         self.linear += 10.0 ** (db.astype(np.float64) / 10.0)
         self.count += 1
+        self.frame = None
         with np.errstate(divide="ignore"):
             self.db = (10.0 * np.log10(self.linear / self.count)).astype(np.float32)
         return True
@@ -119,16 +121,19 @@ class Feed:
         if self.wanted is not None:
             self.wanted()
 
-    def put_json(self, kind: str, obj: dict, latest_only: bool = False) -> None:
+    def put_json(self, kind: str, obj: dict, latest_only: bool = False, text: str | None = None) -> None:
+        """A JSON message ``{"type": kind, **obj}``; ``text`` is it already encoded (shared by every
+        page); ``latest_only`` replaces one of the same kind still waiting."""
         if latest_only:
             for i, item in enumerate(self._items):
                 if item[0] == "json" and item[1] == kind:
                     del self._items[i]
                     break
-        self._items.append(("json", kind, obj))
+        self._items.append(("json", kind, obj, text))
         self._wake()
 
-    def put_power(self, db: np.ndarray, table: int, utc) -> None:
+    def put_power(self, db: np.ndarray, table: int, utc, frame: bytes | None = None) -> None:
+        """A power row (bands, beams) in dB; ``frame`` is it already encoded (shared by every page)."""
         if self._rows >= self.max_rows:
             for item in reversed(self._items):
                 if item[0] == "power":
@@ -136,7 +141,7 @@ class Feed:
                         self.rows_merged += 1
                         return
                     break
-        self._items.append(("power", _Row(np.asarray(db, np.float32), table, utc)))
+        self._items.append(("power", _Row(np.asarray(db, np.float32), table, utc, frame)))
         self._rows += 1
         self._wake()
 
@@ -158,10 +163,10 @@ class Feed:
             return None
         item = self._items.popleft()
         if item[0] == "json":
-            return json_text({"type": item[1], **item[2]})
+            return item[3] if item[3] is not None else json_text({"type": item[1], **item[2]})
         if item[0] == "power":
             self._rows -= 1
             row = item[1]
-            return encode(POWER, row.db, row.table, row.utc, row.count - 1)
+            return row.frame if row.frame is not None else encode(POWER, row.db, row.table, row.utc, row.count - 1)
         self._audio_frames -= len(item[1])
         return encode(AUDIO, item[1], item[2], item[3])

@@ -45,7 +45,7 @@ from beamtap.errors import UsageError
 from ..listen import CAUTION, point_audio_beam
 from ..protocol import valid_track
 from ..subscriber import Controller, ServiceError, Subscriber
-from .feed import Feed, json_text
+from .feed import POWER, Feed, encode, json_text
 from .settings import OPERATOR, WebSettings, role_of
 
 try:
@@ -159,16 +159,23 @@ class Hub:
         kind = item[0]
         if kind in ("beams", "status"):
             self.latest[kind] = item[1]
+        # Encoded once for every page (a page's own frame is made only when its rows are merged).
+        if kind == "power":
+            frame = encode(POWER, item[1], item[2], item[3])
+        elif kind in ("beams", "tracks"):
+            text = json_text({"type": kind, **item[1]})
         for feed in self.feeds:
             if kind == "power":
-                feed.put_power(*item[1:])
+                feed.put_power(*item[1:], frame=frame)
             elif kind == "audio":
                 if feed.listening:
                     feed.put_audio(*item[1:])
             elif kind == "status":
                 feed.put_json("status", self.status_for(feed, item[1]), latest_only=True)
             else:
-                feed.put_json(kind, item[1], latest_only=kind == "beams")
+                # Of beams and tracks only the latest waits: a page that is behind skips to it
+                # (the page marks track trails at the rows it has).
+                feed.put_json(kind, item[1], latest_only=True, text=text)
 
     def status_for(self, feed: Feed, status: dict) -> dict:
         return dict(status, web={"pages": len(self.feeds), "rows_merged": feed.rows_merged,
