@@ -166,12 +166,16 @@ def _mixed(rng, n):
     return plane_wave(80.0, s1, f) + 0.3 * plane_wave(100.0, s2, f) + 0.05 * rng.standard_normal((n, N))
 
 
-def test_block_sizes_agree_on_the_sources_and_the_floor_once_the_averages_settle():
-    """The same input with blocks of 512, 1024 and 2048: MVDR power on the two sources' beams and on
-    the noise floor far from them agrees within 0.5 dB once the averages settle (the issue's check,
-    on those beams). Between the sources it does not yet (measured 2026-12-05: up to 4.5 dB, the
-    frames of the three block sizes differ in length, and per-bin weights alias differently in
-    each; issue 22 stays open for it)."""
+def test_block_sizes_agree_once_the_averages_settle():
+    """The same input with blocks of 512, 1024 and 2048 (frames of 900, 1440 and 2430 samples): MVDR
+    power agrees within 0.5 dB (the issue's tolerance) on every beam except the six in the steep
+    flanks within a delay-and-sum beamwidth of the 10 dB stronger source, and within 1.5 dB there
+    (measured 2026-12-05: at most 1.15 dB, on 82°, two degrees from the source at 80°; 0.4 dB at
+    most beside the weaker one). What is left there follows the
+    frame length: each bin of a shorter frame gathers a wider slice of the spectrum, whose spatial
+    signature spreads and so limits how deep a null next to the look direction can go. Before the
+    adaptive bins covered the band filters' skirts, the spread was 4.5 dB (delay-and-sum leakage
+    through the skirts)."""
     rng = np.random.default_rng(5)
     n = 12 * 16384
     x = _mixed(rng, n)
@@ -182,9 +186,12 @@ def test_block_sizes_agree_on_the_sources_and_the_floor_once_the_averages_settle
                                  AdaptiveSettings(average_s=4.0, update_s=0.25))
         _, p = run(eng, x, block)
         levels.append(10 * np.log10(np.mean(10 ** (p[len(p) // 2:, 0, :] / 10), axis=0)))
-    levels = np.array(levels)
-    for beam in (10, 20, 0, 29):  # the sources at 80° and 100°, the floor at 60° and 118°
-        assert np.ptp(levels[:, beam]) < 0.5, (beam, levels[:, beam])
+    spread = np.ptp(np.array(levels), axis=0)
+    az = fan(60.0, 120.0, 2.0)[:, 0]
+    # within a delay-and-sum beamwidth (about 6.3° at 1.7 kHz) beside the stronger source
+    flank = (np.abs(az - 80.0) > 0.5) & (np.abs(az - 80.0) <= 6.0)
+    assert np.all(spread[~flank] < 0.5), dict(zip(az[~flank], np.round(spread[~flank], 2)))
+    assert np.all(spread[flank] < 1.5), dict(zip(az[flank], np.round(spread[flank], 2)))
 
 
 def test_retarget_at_any_block_position_keeps_going():
