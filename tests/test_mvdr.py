@@ -175,7 +175,9 @@ def test_block_sizes_agree_once_the_averages_settle():
     frame length: each bin of a shorter frame gathers a wider slice of the spectrum, whose spatial
     signature spreads and so limits how deep a null next to the look direction can go. Before the
     adaptive bins covered the band filters' skirts, the spread was 4.5 dB (delay-and-sum leakage
-    through the skirts)."""
+    through the skirts). As in the SINR test, the adaptive band covers the power band filter's
+    skirts (1200-2200 Hz around the 1400-2000 Hz band), so that no bin the power reads keeps
+    delay-and-sum weights."""
     rng = np.random.default_rng(5)
     n = 12 * 16384
     x = _mixed(rng, n)
@@ -183,7 +185,7 @@ def test_block_sizes_agree_once_the_averages_settle():
     levels = []
     for block in (512, 1024, 2048):
         eng = AdaptiveBeamformer(Beamformer(GEO, C, FS, block, beams, pair_rows=False),
-                                 AdaptiveSettings(average_s=4.0, update_s=0.25))
+                                 AdaptiveSettings(average_s=4.0, update_s=0.25, band_hz=(1200.0, 2200.0)))
         _, p = run(eng, x, block)
         levels.append(10 * np.log10(np.mean(10 ** (p[len(p) // 2:, 0, :] / 10), axis=0)))
     spread = np.ptp(np.array(levels), axis=0)

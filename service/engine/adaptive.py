@@ -47,7 +47,7 @@ class AdaptiveSettings:
     average_s: float = 1.0  # cross-spectra averaging time constant, seconds
     loading_db: float = 10.0  # diagonal loading over the estimated sensor noise per bin
     update_s: float = 0.25  # how often the weights are recomputed, seconds
-    band_hz: tuple | None = None  # where R is estimated and weights adapt; None: every bin the power bands read
+    band_hz: tuple | None = None  # where R is estimated and weights adapt; None: the power bands' span
 
     def as_dict(self) -> dict:
         out = {"average_s": self.average_s, "loading_db": self.loading_db, "update_s": self.update_s}
