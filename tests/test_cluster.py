@@ -260,3 +260,22 @@ def test_ctrl_c_cancels_the_whole_job(data, tmp_path):
     while any(os.path.exists(f"/proc/{pid}") for pid in workers) and time.monotonic() < deadline:
         time.sleep(0.1)  # waiting for other processes to exit
     assert not [pid for pid in workers if os.path.exists(f"/proc/{pid}")], "workers outlived the cancelled job"
+
+
+@pytest.mark.parametrize("mode", [[], ["--workers", "2", "--chunk-s", CHUNK_S]])
+def test_full_disk_is_reported_in_one_line(data, tmp_path, mode):
+    """The output disk fills up (a file-size limit: the kernel refuses writes past it, as on a full
+    disk): serial and on Dask, the job ends with one line naming what could not be written."""
+    import resource
+
+    def small_files():
+        resource.setrlimit(resource.RLIMIT_FSIZE, (300_000, 300_000))
+
+    out = tmp_path / "full"
+    r = subprocess.run([sys.executable, "-m", "beamtap", "process", "--config", str(data["cfg"]), str(data["wav"]),
+                        str(data["session"]), "--out", str(out), *map(str, mode)], capture_output=True, text=True,
+                       timeout=240, preexec_fn=small_files)
+    assert r.returncode in (1, 2), r.stderr
+    errors = [line for line in r.stderr.splitlines() if line.startswith("beamtap process: error:")]
+    assert errors and "Traceback" not in r.stderr, r.stderr
+    assert "File too large" in errors[0] and str(out) in errors[0], errors

@@ -143,6 +143,10 @@ def run_chunk(task: ChunkTask) -> dict:
             np.save(part / "firsts.npy", np.concatenate(firsts) if firsts else np.zeros(0, np.int64))
             np.save(part / "power.npy", np.concatenate(power) if power else np.zeros((0, n_bands, n_beams), np.float32))
             parts.append((span.run_index, span.own_from, str(part)))
+    except OSError as exc:
+        if exc.filename:
+            raise
+        raise OSError(exc.errno, f"writing {task.audio_path or task.part_dir}: {exc.strerror or exc}") from None
     finally:
         if patcher is not None:
             patcher.close()
@@ -238,11 +242,14 @@ def make_audio_file(plan: InputPlan, folder: Path) -> str | None:
     if not n_audio or not plan.runs:
         return None
     path = folder / "audio.wav"
-    w = WavWriter(path, plan.config.input.samplerate_hz, n_audio)
     try:
-        w.skip(plan.runs[-1].end - plan.runs[0].first)
-    finally:
-        w.close(sync=False)
+        w = WavWriter(path, plan.config.input.samplerate_hz, n_audio)
+        try:
+            w.skip(plan.runs[-1].end - plan.runs[0].first)
+        finally:
+            w.close(sync=False)
+    except OSError as exc:  # a full disk: where and what, in one line
+        raise UsageError(f"--out {path}: cannot be made: {exc.strerror or exc}") from None
     return str(path)
 
 
@@ -254,7 +261,7 @@ def _client(workers: int, scheduler: str | None, scheduler_file: str | None):
         raise UsageError(NEED_EXTRA) from None
     # Dask's own log lines (worker start-up, closing) would bury the progress bar.
     for name in ("distributed", "distributed.scheduler", "distributed.worker", "distributed.nanny"):
-        logging.getLogger(name).setLevel(logging.ERROR)
+        logging.getLogger(name).setLevel(logging.CRITICAL)
     if scheduler or scheduler_file:
         try:
             return Client(scheduler, scheduler_file=scheduler_file, timeout="10s"), None
@@ -267,7 +274,7 @@ def _client(workers: int, scheduler: str | None, scheduler_file: str | None):
     except ImportError:
         dashboard = None
     cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, dashboard_address=dashboard,
-                           host="127.0.0.1", silence_logs=logging.ERROR)
+                           host="127.0.0.1", silence_logs=logging.CRITICAL)
     return Client(cluster), cluster
 
 

@@ -165,6 +165,16 @@ def process_plan(plan: InputPlan, out_dir, bf) -> dict:
     bar = Progress(plan.frames, config.input.samplerate_hz)
     # About half a second of outputs per hand-over to the writer thread.
     batch_blocks = max(2, int(config.input.samplerate_hz / 2 / config.input.block_frames))
+    try:
+        return _beamform_into(plan, out, bf, counts, bar, batch_blocks)
+    except OSError as exc:  # a full disk, a removed folder: say where, in one line
+        if exc.filename:
+            raise
+        raise UsageError(f"--out {out}: writing the outputs failed: {exc.strerror or exc}") from None
+
+
+def _beamform_into(plan: InputPlan, out: Path, bf, counts: dict, bar, batch_blocks: int) -> dict:
+    config = plan.config
     with Outputs(config, bf, out, plan.anchors) as outputs, _Writer() as writer:
         batch_audio, batch_firsts, batch_power = [], [], []
 
