@@ -508,6 +508,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv=None) -> int:
+    from beamtap.memory import keep_freed_memory  # noqa: PLC0415
+
+    keep_freed_memory()  # the per-block work must not fault its arrays in again (see beamtap.memory)
     parser = build_parser()
     args = parser.parse_args(argv)
     if not hasattr(args, "func"):

@@ -44,6 +44,9 @@ import numpy as np  # noqa: E402
 from beamtap.service.engine import ArrayGeometry, Beamformer  # noqa: E402
 from beamtap.service.engine.beamformer import BeamSet  # noqa: E402
 from beamtap.service.engine.directions import fan, unit_vectors  # noqa: E402
+from beamtap.memory import keep_freed_memory  # noqa: E402
+
+keep_freed_memory()  # as the beamtap command does (see beamtap/memory.py)
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from hoststat import cpu_ticks, steal_share  # noqa: E402

@@ -30,6 +30,9 @@ from beamtap.service.engine import ArrayGeometry, Beamformer  # noqa: E402
 from beamtap.service.engine.beamformer import BeamSet  # noqa: E402
 from beamtap.service.engine.directions import fan, unit_vectors  # noqa: E402
 from beamtap.service.engine.mvdr import AdaptiveBeamformer, AdaptiveSettings  # noqa: E402
+from beamtap.memory import keep_freed_memory  # noqa: E402
+
+keep_freed_memory()  # as the beamtap command does (see beamtap/memory.py)
 
 HERE = Path(__file__).resolve().parent
 FS, C, BLOCK = 48000.0, 1500.0, 1024

@@ -36,6 +36,7 @@ import numpy as np
 
 from beamtap import outputs as outrules
 from beamtap.errors import UsageError
+from beamtap.memory import keep_freed_memory
 from beamtap.session import MANIFEST
 from beamtap.wavfile import WavPatcher, WavWriter
 
@@ -86,21 +87,6 @@ class ChunkTask:
 _ENGINES: dict = {}
 
 
-def _keep_freed_memory() -> None:
-    """Keep freed memory in this process for reuse (glibc): Dask starts its workers with
-    ``MALLOC_TRIM_THRESHOLD_=65536``, which returns every large block to the system and so makes
-    the engine fault its work arrays in again on every call (measured 2026-12-05: a 30 s chunk of
-    64 channels took 2.3-2.8 s that way, 1.6-1.8 s without)."""
-    try:
-        import ctypes  # noqa: PLC0415
-
-        libc = ctypes.CDLL(None)
-        libc.mallopt(-3, 32 << 20)  # M_MMAP_THRESHOLD: blocks below 32 MB come from the heap
-        libc.mallopt(-1, 256 << 20)  # M_TRIM_THRESHOLD: keep up to 256 MB free before trimming
-    except (OSError, AttributeError):  # not glibc: nothing to change
-        pass
-
-
 def _engine(config_text: str, where: str, threads: int):
     """(config, engine) for a chunk, built once per worker process; adaptive engines are never
     shared (their covariance average is state a reset does not clear), nor is more than one kept."""
@@ -108,7 +94,7 @@ def _engine(config_text: str, where: str, threads: int):
     if key in _ENGINES:
         return _ENGINES[key]
     if not _ENGINES:
-        _keep_freed_memory()
+        keep_freed_memory()  # Dask starts workers with MALLOC_TRIM_THRESHOLD_=65536 (see beamtap.memory)
     config = loads(config_text, where)
     bf = make_beamformer(config, threads=threads)
     if config.beams.method == "das":
