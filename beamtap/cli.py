@@ -17,7 +17,6 @@ for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
 import argparse  # noqa: E402
 import math  # noqa: E402
 import sys  # noqa: E402
-from pathlib import Path  # noqa: E402
 
 from beamtap import __version__, outputs  # noqa: E402
 from beamtap.errors import UsageError  # noqa: E402
@@ -153,9 +152,8 @@ def cmd_process(args):
         return rc
     if start_utc is not None and len(inputs) > 1:
         raise UsageError("--start-utc dates one WAV file; give one input with it")
-    for result, folder in zip(campaign.run_serial(loaded, inputs, args.out, args.threads, args.allow_mismatch,
-                                                  start_utc, args.overwrite, warn),
-                              campaign.output_folders(Path(args.out), campaign.expand_inputs(inputs))):
+    for folder, result in campaign.run_serial(loaded, inputs, args.out, args.threads, args.allow_mismatch,
+                                              start_utc, args.overwrite, warn):
         confirmed = sum(1 for t in result["tracks"] if t["confirmed"])
         print(f"wrote {folder}/beams.csv, power.csv, audio.wav, detections.csv, tracks.csv, summary.json: "
               f"{result['frames_processed']} frames, {result['power_rows']} power rows, {confirmed} confirmed tracks, "

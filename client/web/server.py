@@ -159,6 +159,8 @@ class Hub:
         kind = item[0]
         if kind in ("beams", "status"):
             self.latest[kind] = item[1]
+        if not self.feeds:
+            return
         # Encoded once for every page (a page's own frame is made only when its rows are merged).
         if kind == "power":
             frame = encode(POWER, item[1], item[2], item[3])

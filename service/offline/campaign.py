@@ -107,7 +107,6 @@ def _engine(config_text: str, where: str, threads: int):
 
 def run_chunk(task: ChunkTask) -> dict:
     """Beamform one chunk into its part folder (runs on a worker); returns its counts."""
-    started = time.perf_counter()
     config, bf = _engine(task.config_text, task.config_where, task.threads)
     counts = new_counts()
     parts = []
@@ -138,11 +137,10 @@ def run_chunk(task: ChunkTask) -> dict:
             patcher.close()
         if _ENGINES.get((task.config_text, task.config_where, task.threads), (None, None))[1] is not bf:
             bf.close()
-    return {"counts": counts, "parts": parts, "seconds": time.perf_counter() - started,
-            "frames": sum(s.own_to - s.own_from for s in task.spans)}
+    return {"counts": counts, "parts": parts, "frames": sum(s.own_to - s.own_from for s in task.spans)}
 
 
-def finish_input(plan: InputPlan, out: str, extra: dict, *chunks: dict) -> dict:
+def finish_input(plan: InputPlan, out: str, extra: dict, *chunks: dict) -> None:
     """Stitch an input's power parts, in stream order, into its outputs and ``summary.json`` (runs
     on a worker, after the input's chunks, which wrote their audio into ``audio.wav`` themselves);
     detection and tracking go over the stitched rows."""
@@ -154,21 +152,13 @@ def finish_input(plan: InputPlan, out: str, extra: dict, *chunks: dict) -> dict:
             counts[k] += c["counts"][k]
     parts = sorted(p for c in chunks for p in c["parts"])
     with Outputs(config, bf, out, plan.anchors, audio=False) as outputs:
-        end_prev = None
-        for i, run in enumerate(plan.runs):
-            if end_prev is not None:
-                counts["gaps"] += 1
-                counts["gap_frames"] += run.first - end_prev
-            for _, _, part in (p for p in parts if p[0] == i):
-                firsts, power = np.load(Path(part) / "firsts.npy"), np.load(Path(part) / "power.npy")
-                if len(firsts):
-                    outputs.write_batch([], [firsts], [power])
-            end_prev = run.end
-    summary = write_summary(out, plan, counts, outputs, bf, extra)
+        for _, _, part in parts:  # in stream order: (run, first owned frame)
+            firsts, power = np.load(Path(part) / "firsts.npy"), np.load(Path(part) / "power.npy")
+            if len(firsts):
+                outputs.write_batch([], [firsts], [power])
+    write_summary(out, plan, counts, outputs, bf, extra)
     for _, _, part in parts:
         shutil.rmtree(part, ignore_errors=True)
-    return {"frames": counts["frames"], "power_rows": counts["power_rows"],
-            "tracks": sum(1 for t in summary["tracks"] if t["confirmed"])}
 
 
 # ---- the client side ------------------------------------------------------------------------------
@@ -365,7 +355,8 @@ def _run_tasks(client, plans, tasks, folders, n_workers, chunk_s, threads, error
 def run_serial(config, inputs, out, threads=None, allow_mismatch=False, start_utc=None, overwrite=False,
                warn=None) -> list[dict]:
     """``--workers 1``: each input in turn on this machine (the engine on ``threads``, every core by
-    default); several inputs go into folders of their own with ``index.csv``. Returns the summaries."""
+    default); several inputs go into folders of their own with ``index.csv``. Returns (output folder,
+    summary) per input."""
     from ..engine.beamformer import KERNELS_MISSING  # noqa: PLC0415
     from .process import process_plan  # noqa: PLC0415
 
@@ -385,7 +376,7 @@ def run_serial(config, inputs, out, threads=None, allow_mismatch=False, start_ut
             if key not in engines:
                 engines[key] = make_beamformer(plan.config,
                                                threads=plan.config.engine_threads(offline=True, override=threads))
-            results.append(process_plan(plan, f, engines[key]))
+            results.append((f, process_plan(plan, f, engines[key])))
             status[k] = "done"
     finally:
         for bf in engines.values():

@@ -196,8 +196,6 @@ def _beamform_into(plan: InputPlan, out: Path, bf, counts: dict, bar, batch_bloc
             if end_prev is not None:  # a gap: silence in audio.wav keeps it on the session's time axis
                 hand_over()
                 writer.submit(outputs.gap, run.first - end_prev)
-                counts["gaps"] += 1
-                counts["gap_frames"] += run.first - end_prev
             beamform_span(bf, run, run.first, run.end, counts, on_audio, on_power,
                           read_ahead=bf.threads < available_cores(), progress=bar)
             hand_over()
@@ -206,7 +204,7 @@ def _beamform_into(plan: InputPlan, out: Path, bf, counts: dict, bar, batch_bloc
 
 
 def new_counts() -> dict:
-    return {"nan": 0, "clipped": 0, "frames": 0, "power_rows": 0, "gaps": 0, "gap_frames": 0}
+    return {"nan": 0, "clipped": 0, "frames": 0, "power_rows": 0}
 
 
 def read_span(run: Run, start: int, stop: int, frames_per_read: int):
@@ -396,8 +394,8 @@ def write_summary(out: Path, plan: InputPlan, counts: dict, outputs: Outputs, bf
                            "the same span); time_utc its UTC time when known; rows cover whole blocks only",
         "first_sample": int(plan.runs[0].first) if plan.runs else 0,
         "frames_processed": counts["frames"],
-        "gaps": counts["gaps"],
-        "gap_frames": counts["gap_frames"],
+        "gaps": max(len(plan.runs) - 1, 0),
+        "gap_frames": sum(b.first - a.end for a, b in zip(plan.runs, plan.runs[1:])),
         "power_rows": counts["power_rows"],
         "nan_samples": counts["nan"],
         "clipped_samples": counts["clipped"],

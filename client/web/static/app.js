@@ -13,7 +13,7 @@ const LIMIT_DBFS = -6;          // audio: hard limit after the volume
 const $ = (id) => document.getElementById(id);
 const state = {
   ws: null, role: null, palette: null, lut: null,
-  beams: null, nBands: 0, nBeams: 0, capacity: 0, rows: null, times: null, merged: 0,
+  beams: null, az: [], nBands: 0, nBeams: 0, capacity: 0, rows: null, times: null, merged: 0,
   total: 0, lastMessageMs: 0, status: null, autoTop: null, renderedTop: null, renderedRange: null,
   trails: [], tracks: [], drawPending: false, lastRowMs: 0,
   audio: null, listening: null, underruns: 0, audioDropped: 0,
@@ -45,6 +45,7 @@ const hctx = history.getContext("2d");
 
 function resetHistory(beams) {
   state.beams = beams;
+  state.az = beams.power_deg.map((d) => d[0]);  // the beams' azimuths, for bearing <-> x
   state.nBands = beams.bands_hz.length;
   state.nBeams = beams.power_deg.length;
   const rate = beams.samplerate_hz / (beams.power_block_frames || 1024);
@@ -241,8 +242,7 @@ function drawAxis() {
   ctx.strokeStyle = "#93a1b8";
   ctx.font = "12px system-ui, sans-serif";
   ctx.textAlign = "center";
-  const az = state.beams.power_deg.map((d) => d[0]);
-  const lo = Math.min(...az), hi = Math.max(...az);
+  const lo = Math.min(...state.az), hi = Math.max(...state.az);
   const step = hi - lo > 120 ? 30 : hi - lo > 40 ? 10 : 5;
   for (let a = Math.ceil(lo / step) * step; a <= hi; a += step) {
     const x = xOfBearing(a, c.width);
@@ -274,7 +274,7 @@ function drawColourbar() {
 
 // Beam index <-> canvas x: beams are drawn in table order, one column each.
 function xOfBearing(azimuth, width) {
-  const az = state.beams.power_deg.map((d) => d[0]);
+  const az = state.az;
   const n = az.length;
   if (n < 2) return width / 2;
   const dir = Math.sign(az[n - 1] - az[0]) || 1;
