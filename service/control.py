@@ -26,7 +26,7 @@ from . import config as cfg
 from . import security
 from .engine.cost import AdmissionError
 from .publisher import bind
-from .tomlcheck import _Table
+from .tomlcheck import _Table, key_text
 
 log = logging.getLogger("beamtap.control")
 
@@ -48,7 +48,7 @@ def _refuse_missing_values(req: dict) -> None:
     msgpack nil must never read as "key absent" (that would silently keep a
     default) and a non-finite number must never reach arithmetic.
     """
-    stack = [(v, k, 1) for k, v in req.items()]
+    stack = [(v, key_text(k), 1) for k, v in req.items()]
     while stack:
         value, where, depth = stack.pop()
         if depth > _MAX_DEPTH:
@@ -61,7 +61,7 @@ def _refuse_missing_values(req: dict) -> None:
             for k, v in value.items():
                 if not isinstance(k, str):
                     raise RequestError(f"{where}: key {k!r} is not a string")
-                stack.append((v, f"{where}.{k}", depth + 1))
+                stack.append((v, f"{where}.{key_text(k)}", depth + 1))
         elif isinstance(value, list):
             stack.extend((v, f"{where}[{i}]", depth + 1) for i, v in enumerate(value))
 

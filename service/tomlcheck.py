@@ -16,13 +16,20 @@ from beamtap.errors import ConfigError
 _REQUIRED = object()
 
 
+def key_text(name) -> str:
+    """A key as an error message shows it: plain names as they are, anything else (a key sent with
+    a line break, quotes or spaces) quoted, so that every message stays on one line."""
+    name = str(name)
+    return name if name.replace("_", "a").replace("-", "a").isalnum() and name.isascii() else repr(name)
+
+
 class _Table:
     def __init__(self, data: dict, where: str, path: str):
         self.data, self.where, self.path = data, where, path
         self.used: set[str] = set()
 
     def key(self, name: str) -> str:
-        return f"{self.path}.{name}" if self.path else name
+        return f"{self.path}.{key_text(name)}" if self.path else key_text(name)
 
     def fail(self, name: str, value, expected: str):
         shown = "missing" if value is _REQUIRED else "got nil" if value is None else f"got {value!r}"

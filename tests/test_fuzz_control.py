@@ -15,7 +15,7 @@ import msgpack
 import numpy as np
 import pytest
 import zmq
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
 from beamtap.client import Controller, Subscriber
@@ -121,6 +121,9 @@ def test_fuzz_random_msgpack_is_answered(fuzzed, obj):
 
 @settings(max_examples=400, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(request=_schema)
+# Found by this fuzz on 2026-12-05: a key holding a line break was echoed into a two-line error.
+@example(request={"cmd": "beams", "set": {"fan": {}, "colour": {"\n": None}}})
+@example(request={"cmd": "beams", "set": {"fan\nx": 1}})
 def test_fuzz_schema_requests_are_answered(fuzzed, request):
     _, req, _ = fuzzed
     _ask(req, msgpack.packb(request, use_bin_type=True))
