@@ -18,7 +18,8 @@ has ``beams-000007.csv`` and ``bands-000007.csv`` (the beam table can
 change between segments). Plain CSV, no comment lines: any CSV reader
 takes it.
 
-Needs only numpy and the standard library.
+Needs only numpy and the standard library (the compiled kernels, when
+installed, format the rows faster).
 """
 
 from __future__ import annotations
@@ -33,6 +34,11 @@ from pathlib import Path
 import numpy as np
 
 from beamtap.errors import UsageError
+
+try:  # the compiled text formatter; Python's % formatting without it (the same text)
+    from beamtap.service.engine import _kernels
+except ImportError:  # pragma: no cover - installs without a C compiler
+    _kernels = None
 
 _COLUMN = re.compile(r"^b(\d+)_(\d+)$")
 
@@ -54,15 +60,27 @@ def header(n_bands: int, n_beams: int) -> str:
     return ",".join(["first_sample", "time_utc"] + [f"b{b}_{i}" for b in range(n_bands) for i in range(n_beams)])
 
 
+def values_text(power) -> list:
+    """Each row of ``power`` (K, M) float32 as comma-separated ``"%.3f"`` text, one str per row.
+
+    The compiled formatter (``_kernels.fixed3``) gives the same characters
+    as Python's ``%`` at about a tenth of its cost; without the kernels,
+    Python formats them.
+    """
+    power = np.ascontiguousarray(power, np.float32)
+    if _kernels is not None:
+        return _kernels.fixed3(power, power.shape[0], power.shape[1])
+    # One format string per row: four to five times faster than formatting value by value
+    # (numpy.char.mod), measured 2026-12-05 on 181 beams.
+    fmt = ",".join(["%.3f"] * power.shape[1])
+    return [fmt % tuple(v) for v in power.tolist()]
+
+
 def rows_text(first_samples, times_utc, power_db) -> str:
     """CSV text of rows: ``first_samples`` (K,), ``times_utc`` (K,) POSIX seconds or None each,
     ``power_db`` (K, bands, beams)."""
     power = np.asarray(power_db, np.float32).reshape(len(first_samples), -1)
-    # One format string per row: four to five times faster than formatting value by value
-    # (numpy.char.mod), measured 2026-12-05 on 181 beams.
-    fmt = ",".join(["%.3f"] * power.shape[1]) + "\n"
-    return "".join(f"{int(n)},{iso_utc(t)}," + fmt % tuple(v)
-                   for n, t, v in zip(first_samples, times_utc, power.tolist()))
+    return "".join(f"{int(n)},{iso_utc(t)},{v}\n" for n, t, v in zip(first_samples, times_utc, values_text(power)))
 
 
 def sidecar_names(power_csv: Path) -> tuple[Path, Path]:
@@ -84,8 +102,9 @@ def sidecars_text(power_deg, bands_hz, band_delays) -> tuple[str, str]:
 def write_sidecars(power_csv: Path, power_deg, bands_hz, band_delays) -> None:
     beams_path, bands_path = sidecar_names(Path(power_csv))
     beams, bands = sidecars_text(power_deg, bands_hz, band_delays)
-    beams_path.write_text(beams)
-    bands_path.write_text(bands)
+    for path, text in ((beams_path, beams), (bands_path, bands)):
+        path.unlink(missing_ok=True)  # a new file, not a truncated one (see process.Outputs)
+        path.write_text(text)
 
 
 @dataclass

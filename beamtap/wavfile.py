@@ -271,14 +271,14 @@ class WavWriter:
         """Append frames, shape (n, channels), float in ±1."""
         block = np.asarray(block, dtype=np.float32).reshape(-1, self.channels)
         if self.sample_format == "float32":
-            data = block.astype("<f4").tobytes()
+            data = memoryview(np.ascontiguousarray(block, "<f4").reshape(-1).view(np.uint8))  # no copy
         else:
             v = np.clip(np.round(block.astype(np.float64) * (1 << 23)), -(1 << 23), (1 << 23) - 1).astype("<i4")
             data = v.view(np.uint8).reshape(-1, 4)[:, :3].tobytes()
         self._write_whole(data, self.bytes_written)
         self.frames += len(block)
 
-    def _write_whole(self, data: bytes, good_size: int) -> None:
+    def _write_whole(self, data, good_size: int) -> None:
         """Append ``data`` entirely, or cut the file back to ``good_size`` bytes (the header and the
         whole frames before it, kept consistent) and re-raise: a full disk leaves a valid file."""
         view = memoryview(data)

@@ -511,8 +511,10 @@ def _adaptive(t: _Table, fs: float) -> AdaptiveSettings:
     loading = t.number("loading_db", 10.0, low=-60.0, high=100.0, unit="dB")
     update = t.number("update_s", 0.25, low=0.01, high=3600.0, unit="s")
     band = _band(t, "band_hz", fs) if t.has("band_hz") else None
+    # at most the longest frame the engine takes, at least 16 samples a frame
+    resolution = t.number("resolution_hz", None, low=fs / cost.MAX_FRAME_SAMPLES, high=fs / 16.0, unit="Hz")
     t.done()
-    return AdaptiveSettings(average, loading, update, None if band is None else tuple(band))
+    return AdaptiveSettings(average, loading, update, None if band is None else tuple(band), resolution)
 
 
 def _admit_count(t: _Table, name: str, n_power: int, n_audio: int = 0) -> None:

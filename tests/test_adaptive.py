@@ -130,3 +130,24 @@ def test_averaged_cross_spectra_converge_to_the_true_matrix(rng):
     assert np.allclose(est.r[0], est.r[0].conj().T)
     with pytest.raises(ValueError):
         CrossSpectra(1, N, average_s=0.0, block_s=1.0)
+
+
+@pytest.mark.parametrize("average_s", [3.0, 1e6])
+def test_cross_spectra_read_a_slice_at_a_time_equal_the_block_by_block_average(rng, average_s):
+    """The folded average, read whole or a few bins at a time at any moment (as the MVDR updates read
+    it), equals the block-by-block recursion R <- (1 - w) R + w x x^H with w = max(1 - forget,
+    1/count) (exponential forgetting started as a plain mean: common practice), to double rounding;
+    and it keeps no more than its bound of blocks unfolded however long nobody reads it."""
+    n_bins, m = 7, 5
+    est = CrossSpectra(n_bins, m, average_s=average_s, block_s=1.0)
+    want = np.zeros((n_bins, m, m), complex)
+    for count in range(1, 201):
+        x = rng.standard_normal((n_bins, m)) + 1j * rng.standard_normal((n_bins, m))
+        est.update(x)
+        w = max(1.0 - math.exp(-1.0 / average_s), 1.0 / count)
+        want = (1 - w) * want + w * x[:, :, None] * np.conj(x[:, None, :])
+        if count % 13 == 5:
+            bins = rng.choice(n_bins, 3, replace=False)
+            np.testing.assert_allclose(est.of(bins), want[bins], rtol=1e-12, atol=1e-12)
+        assert len(est._pending) <= CrossSpectra._KEEP_BLOCKS + 1
+    np.testing.assert_allclose(est.r, want, rtol=1e-12, atol=1e-12)

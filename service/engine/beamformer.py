@@ -274,7 +274,8 @@ class Beamformer:
         # Priced from counts and ranges before anything is built; over the memory ceiling it is refused.
         _, work_bytes, n_fft = cost.block_work(
             self._basis.n_rows, len(beams.power_deg), len(beams.audio_deg), beams.bands_hz, beams.transition_hz,
-            self.samplerate_hz, self.block_frames, self.bulk_delay_samples)
+            self.samplerate_hz, self.block_frames, self.bulk_delay_samples,
+            cost.min_frame_of(beams, self.samplerate_hz))
         cost.check_memory(work_bytes, len(beams.power_deg), len(beams.audio_deg), self._basis.n_rows, n_fft)
         return _Steering(self.geometry, self._basis, self.sound_speed_mps, self.samplerate_hz,
                          self.bulk_delay_samples, n_fft, self.block_frames, beams, self.compiled,

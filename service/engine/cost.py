@@ -110,11 +110,19 @@ def band_transition_hz(band_hz, transition_hz, samplerate_hz) -> float:
     return bandpower.default_transition_hz(band_hz, samplerate_hz) if transition_hz is None else float(transition_hz)
 
 
-def frame_length(block_frames: int, bulk_delay: int, bands_hz, transition_hz, samplerate_hz: float) -> int:
-    """FFT frame length N >= block + 2D + 1 + band filter - 2 (see :mod:`.beamformer`)."""
+def frame_length(block_frames: int, bulk_delay: int, bands_hz, transition_hz, samplerate_hz: float,
+                 min_frame: int = 0) -> int:
+    """FFT frame length N >= block + 2D + 1 + band filter - 2 (see :mod:`.beamformer`), and
+    >= ``min_frame`` (an adaptive beam set's resolution, :func:`min_frame_of`)."""
     taps = max(bandpower.band_filter_taps(band_transition_hz(b, transition_hz, samplerate_hz), samplerate_hz)
                for b in bands_hz)
-    return fast_length(block_frames + steering.filter_span_samples(bulk_delay) + taps - 2)
+    return fast_length(max(block_frames + steering.filter_span_samples(bulk_delay) + taps - 2, int(min_frame)))
+
+
+def min_frame_of(beams, samplerate_hz: float) -> int:
+    """The shortest frame a :class:`~.beamformer.BeamSet` asks for: MVDR beams with
+    ``resolution_hz`` set hold their bins that narrow whatever the block (0: none)."""
+    return beams.adaptive.min_frame_samples(samplerate_hz) if beams.method == "mvdr" else 0
 
 
 def _band_bins(band_hz, tw: float, n_fft: int, samplerate_hz: float) -> int:
@@ -124,9 +132,9 @@ def _band_bins(band_hz, tw: float, n_fft: int, samplerate_hz: float) -> int:
 
 
 def block_work(rows: int, n_power: int, n_audio: int, bands_hz, transition_hz, samplerate_hz: float,
-               block_frames: int, bulk_delay: int) -> tuple:
+               block_frames: int, bulk_delay: int, min_frame: int = 0) -> tuple:
     """(formula ns per block, work bytes, n_fft) of a beam set, from counts and ranges only."""
-    n_fft = frame_length(block_frames, bulk_delay, bands_hz, transition_hz, samplerate_hz)
+    n_fft = frame_length(block_frames, bulk_delay, bands_hz, transition_hz, samplerate_hz, min_frame)
     half = n_fft // 2 + 1
     log_n = math.log2(n_fft)
     tws = [band_transition_hz(b, transition_hz, samplerate_hz) for b in bands_hz]
@@ -191,7 +199,7 @@ class CostModel:
         """The :class:`BlockCost` of a :class:`~.beamformer.BeamSet` (nothing is built)."""
         ns, nbytes, n_fft = block_work(self.rows, len(beams.power_deg), len(beams.audio_deg), beams.bands_hz,
                                        beams.transition_hz, self.samplerate_hz, self.block_frames,
-                                       self.bulk_delay)
+                                       self.bulk_delay, min_frame_of(beams, self.samplerate_hz))
         return BlockCost(ns, self.scale * ns * 1e-9, self.block_frames / self.samplerate_hz, nbytes, n_fft)
 
     def admit(self, beams, realtime: bool = True) -> BlockCost:

@@ -70,13 +70,18 @@ def beamwidth_deg(positions_m, weights, look_deg, frequency_hz, sound_speed_mps,
         u = unit_vectors(az0 + sign * np.atleast_1d(offset), np.full(np.size(offset), el0))
         return response_db(positions_m, weights, look, u, frequency_hz, sound_speed_mps) + 3.0103
 
+    # The first -3 dB point is near half the main lobe: scan two lobe widths first, the rest only
+    # when it is not there (the same first crossing as one whole scan, at a tenth of the cost).
+    near = int(np.clip(2.0 * lobe_deg / step, 64, len(offsets)))
     edges = []
     for sign in (1.0, -1.0):
-        below = np.nonzero(level_db(offsets, sign) <= 0.0)[0]
-        if len(below) == 0:
-            return float("nan")
-        i = below[0]
-        if i == 0:
+        i = None
+        for lo, hi in ((0, near), (near, len(offsets))):
+            below = np.nonzero(level_db(offsets[lo:hi], sign) <= 0.0)[0] if lo < hi else ()
+            if len(below):
+                i = lo + int(below[0])
+                break
+        if i is None or i == 0:
             return float("nan")
         edges.append(brentq(lambda o: float(level_db(o, sign)[0]), offsets[i - 1], offsets[i],
                             xtol=resolution_deg / 100.0))

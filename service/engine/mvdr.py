@@ -15,8 +15,8 @@ one): with ``a`` the look direction's manifold and ``g = sum(h_das a)`` the
 delay-and-sum response (``exp(-j w D)`` up to the fractional-delay
 filter's ripple), the steering is ``h = g conj(w)``, ``w^H a = 1``.
 
-Not wired into the service yet (issue 22 is open): the engine-level pieces
-and their tests (tests/test_mvdr.py).
+The service, ``process`` and ``pattern`` build it through :func:`engine_for`
+(``[beams] method = "mvdr"``); tests in tests/test_mvdr.py.
 """
 
 from __future__ import annotations
@@ -28,8 +28,12 @@ from .beamformer import Beamformer, BlockResult, _concat_results
 
 __all__ = ["AdaptiveBeamformer", "AdaptiveSettings", "engine_for"]
 
-#: Weight updates between two estimates of the noise floor under the loading.
+#: Weight updates between two estimates of a bin's noise floor under the loading.
 _NOISE_EVERY = 4
+#: Work per slice of an update, in multiply-adds of M^3 per bin plus M^2 per beam and bin (M
+#: sensors): about 2 ms of one core here (measured 2026-12-05: 64 sensors, 181 + 8 beams, 3.5
+#: bins a slice took 4 ms with the engine's own block).
+_SLICE_WORK = 2_000_000
 
 
 class AdaptiveBeamformer:
@@ -53,6 +57,10 @@ class AdaptiveBeamformer:
         if engine.mirror_pair_rows:
             raise ValueError("method mvdr needs one history row per sensor; this engine holds mirror-pair rows "
                              "(start the service with [beams] method = \"mvdr\" for this array)")
+        need = settings.min_frame_samples(engine.samplerate_hz)
+        if engine.fft_size < need:
+            raise ValueError(f"resolution_hz={settings.resolution_hz!r} needs frames of {need} samples, this engine's "
+                             f"are {engine.fft_size}: build it with BeamSet(method=\"mvdr\", adaptive=settings)")
         self.engine, self.settings = engine, settings
         self.fallback_bins = 0
         self.updates = 0
@@ -78,7 +86,8 @@ class AdaptiveBeamformer:
     def status(self) -> dict:
         """What the service reports of the adaptive stage."""
         return {"method": "mvdr", **self.settings.as_dict(), "weight_updates": self.updates,
-                "fallback_bins": self.fallback_bins, "adaptive_bins": int(len(self.bins))}
+                "fallback_bins": self.fallback_bins, "adaptive_bins": int(len(self.bins)),
+                "bin_hz": self.engine.samplerate_hz / self._n_fft}
 
     def rebuild(self) -> None:
         """Set up for the engine's current (delay-and-sum) steering: after a retarget, the new beams'
@@ -101,7 +110,7 @@ class AdaptiveBeamformer:
         if not len(self.bins):
             raise ValueError(f"band_hz=({lo:g}, {hi:g}): no FFT bin in it at {fs:g} Hz and {n_fft} points")
         n_sensors = engine._basis.n_rows
-        if self.cross is None or self.cross.r.shape[0] != len(self.bins) or self._cross_bins is None or \
+        if self.cross is None or self.cross.n_bins != len(self.bins) or self._cross_bins is None or \
                 not np.array_equal(self._cross_bins, self.bins):
             self.cross = CrossSpectra(len(self.bins), n_sensors, settings.average_s, engine.block_frames / fs)
             self._cross_bins = self.bins
@@ -115,15 +124,19 @@ class AdaptiveBeamformer:
         self._a_to_p[self._p_in_a] = np.arange(len(self._p_sel))
         h_das, _, _ = base.das_steering(beams.power_deg, p_bins[self._p_sel])
         self._p_a = base.manifold(beams.power_deg, p_bins[self._p_sel])
-        self._p_g = np.einsum("kbm,kbm->kb", h_das, self._p_a)
+        self._p_g = np.einsum("kbm,kbm->kb", h_das, self._p_a).astype(np.complex64)  # steering is float32
         self._audio = len(beams.audio_deg) > 0
         if self._audio:
             h_das, _, _ = base.das_steering(beams.audio_deg, self.bins)
             self._a_a = base.manifold(beams.audio_deg, self.bins)
-            self._a_g = np.einsum("kbm,kbm->kb", h_das, self._a_a)
+            self._a_g = np.einsum("kbm,kbm->kb", h_das, self._a_a).astype(np.complex64)
         self._update_frames = max(1, int(round(settings.update_s * fs)))
         self._since = 0
         self._cycle = None  # an update in progress (see process)
+        # Two steerings of our own, applied in turn: an update writes its bins into the one the
+        # engine is not using, slice by slice, so no block copies or repacks the whole steering
+        # (5 MB per plane for 64 sensors and 181 beams).
+        self._spares = [base.own_copy(), base.own_copy()]
         engine.on_spectra = self._observe
 
     def _observe(self, spec: np.ndarray) -> None:
@@ -133,11 +146,12 @@ class AdaptiveBeamformer:
     def process(self, block: np.ndarray) -> BlockResult:
         """Beamform one block (as :meth:`Beamformer.process`).
 
-        Every ``update_s`` a weight update starts from a snapshot of the
-        averaged cross-spectra; its work is spread over the next blocks, a
-        slice of the adaptive bins per block (about half the update period's
-        blocks, so no block carries the whole of it), and the new steering
-        takes effect at the end of the block that finishes it.
+        Every ``update_s`` a weight update starts; its work is spread over
+        about three quarters of the update period's blocks, a slice of the
+        adaptive bins per block, each solved from its bins' averaged
+        cross-spectra of that block (so no block carries the whole of it),
+        and the new steering takes effect at the end of the block that
+        finishes it.
         """
         out = self.engine.process(block)
         self._since += len(block)
@@ -158,55 +172,62 @@ class AdaptiveBeamformer:
 
     def _start_cycle(self) -> None:
         n_bins = len(self.bins)
-        blocks = max(1, self._update_frames // (2 * self.engine.block_frames))
+        # As many slices as the work needs (about 2 ms each here, see _SLICE_WORK), over at most three
+        # quarters of the update period's blocks: the new weights apply within it. Few sensors need
+        # one slice, where each slice's fixed cost (a dozen numpy calls) would dominate.
+        m = self.cross.n_sensors
+        work = n_bins * (m ** 3 + m * m * (len(self._p_sel) / max(n_bins, 1) * self.engine.beams.power_deg.shape[0]
+                                           + len(self.engine.beams.audio_deg)))
+        blocks = max(1, min(3 * self._update_frames // (4 * self.engine.block_frames), -(-int(work) // _SLICE_WORK)))
+        target = self._spares[0]
+        engine = self.engine
+        if target is engine._steer[0] or (engine._fade_from is not None and engine._fade_from[0] is target):
+            # still in use (a crossfade longer than an update period): a fresh copy this time
+            target = self._spares[0] = self._base.own_copy()
         self._cycle = {
-            "r": self.cross.r.copy(),  # the snapshot every slice of this update is solved from
             "slices": np.array_split(np.arange(n_bins), min(n_bins, blocks)), "next": 0,
-            "power_h": np.empty((len(self._p_sel), self.engine.beams.power_deg.shape[0], self.cross.r.shape[1]),
-                                np.complex128),
-            "audio_h": np.empty((n_bins, len(self.engine.beams.audio_deg), self.cross.r.shape[1]), np.complex128)
-            if self._audio else None,
+            "steering": target,
         }
 
     def _work_slice(self) -> bool:
-        """The next step of the update in progress; True when its steering is ready to apply.
-
-        Steps: a slice of the adaptive bins (its loaded factors and the power
-        and audio weights on it), then the power steering repacked, then the
-        audio steering, each in a block of its own."""
+        """The next slice of the adaptive bins of the update in progress (their loaded factors,
+        and the power and audio weights written into the steering being made); True when the
+        steering is ready to apply."""
         c = self._cycle
+        self._solve_slice(c["slices"][c["next"]])
+        c["next"] += 1
         if c["next"] < len(c["slices"]):
-            self._solve_slice(c["slices"][c["next"]])
-            c["next"] += 1
             return False
-        if "power" not in c:
-            c["power"] = self._base.with_bins(self._p_sel, c["power_h"], None, None)
-            return False
-        c["steering"] = c["power"].with_bins(np.zeros(0, int), None, self.bins if self._audio else None,
-                                             c["audio_h"])
+        self._spares.reverse()  # the other one is written next time
         return True
 
     def _solve_slice(self, idx: np.ndarray) -> None:
         """Loaded factors and weights on adaptive bins ``idx``; the noise floor under the loading
         (eigenvalues, the costliest part for many sensors; it moves slowly) every fourth update."""
         c = self._cycle
-        stale = np.isnan(self._noise[idx])
-        if self.updates % _NOISE_EVERY == 0 or stale.any():
-            finite = np.isfinite(c["r"][idx]).all(axis=(1, 2))
-            noise = np.zeros(len(idx))
-            noise[finite] = noise_power(c["r"][idx][finite])
-            self._noise[idx] = noise
-        linv, fallback = loaded_factors(c["r"][idx], self.settings.loading_db, self._noise[idx])
+        # Each slice is solved from its bins' averages as they are now (a copy of these bins only:
+        # a snapshot of every bin at the update's start cost a 4 MB copy in one block, 64 sensors).
+        r = self.cross.of(idx)
+        # A quarter of the bins refresh their noise floor each update (each bin every fourth), so
+        # every slice carries the same share of eigenvalue work; bins with none yet get one now.
+        due = (idx % _NOISE_EVERY == self.updates % _NOISE_EVERY) | np.isnan(self._noise[idx])
+        if due.any():
+            finite = np.isfinite(r[due]).all(axis=(1, 2))
+            noise = np.zeros(int(due.sum()))
+            noise[finite] = noise_power(r[due][finite])
+            self._noise[idx[due]] = noise
+        linv, fallback = loaded_factors(r, self.settings.loading_db, self._noise[idx])
         in_power = self._a_to_p[idx]
         sel = np.nonzero(in_power >= 0)[0]
+        steering = c["steering"]
         if len(sel):
             rows = in_power[sel]
             w, fb = weights_from_factors(linv[sel], fallback[sel], self._p_a[rows], np.complex64)
-            c["power_h"][rows] = self._p_g[rows][..., None] * np.conj(w)
+            steering.power.set_bins(self._p_sel[rows], self._p_g[rows][..., None] * np.conj(w))
             self.fallback_bins += int(fb.sum())
         if self._audio:
             w, fb = weights_from_factors(linv, fallback, self._a_a[idx], np.complex64)
-            c["audio_h"][idx] = self._a_g[idx][..., None] * np.conj(w)
+            steering.audio.set_bins(self.bins[idx], self._a_g[idx][..., None] * np.conj(w))
             self.fallback_bins += int(fb.sum())
 
 

@@ -82,25 +82,28 @@ class _BeamProduct:
         else:
             self.h = [np.ascontiguousarray(q, dtype=np.float32 if symmetric else np.complex64)]
 
-    def with_bins(self, rel_bins: np.ndarray, h: np.ndarray) -> "_BeamProduct":
-        """A copy whose steering on ``rel_bins`` (indices into this product's bins) is ``h``
-        (len(rel_bins), beams, sensors), sensor rows only: the packed arrays are copied and those
-        bins overwritten, a fraction of the cost of packing every bin again."""
-        if self.real_form:
-            raise ValueError("with_bins: a mirror-pair (real) product cannot take complex steering")
+    def own_copy(self) -> "_BeamProduct":
+        """A copy holding steering arrays of its own, for :meth:`set_bins` to change."""
         out = object.__new__(_BeamProduct)
         out.__dict__.update(self.__dict__)
         out.h = [part.copy() for part in self.h]
+        return out
+
+    def set_bins(self, rel_bins: np.ndarray, h: np.ndarray) -> None:
+        """Replace, in place, the steering on ``rel_bins`` (indices into this product's bins) by
+        ``h`` (len(rel_bins), beams, sensors), sensor rows only; a fraction of the cost of packing
+        every bin again. Only for a product no engine is using (see :meth:`own_copy`)."""
+        if self.real_form:
+            raise ValueError("set_bins: a mirror-pair (real) product cannot take complex steering")
         if self.compiled:
             formed = len(self.main_out)
-            groups = out.h[0].shape[0]
+            groups = self.h[0].shape[0]
             q = np.pad(h[:, self.main_out], ((0, 0), (0, groups * self.lanes - formed), (0, 0)))
             q = q.reshape(len(rel_bins), groups, self.lanes, -1).transpose(1, 0, 3, 2)
-            out.h[0][:, rel_bins] = q.real
-            out.h[1][:, rel_bins] = q.imag
+            self.h[0][:, rel_bins] = q.real
+            self.h[1][:, rel_bins] = q.imag
         else:
-            out.h[0][rel_bins] = h
-        return out
+            self.h[0][rel_bins] = h
 
     @property
     def nbytes(self) -> int:

@@ -75,16 +75,13 @@ class _Steering:
         phase = 2.0 * np.pi * np.asarray(bins)[:, None, None] * tau[None, :, :] / n_fft
         return np.exp(1j * phase) / geometry.active_gain[None, None, :]
 
-    def with_bins(self, power_rel: np.ndarray, power_h: np.ndarray, audio_rel: np.ndarray | None,
-                  audio_h: np.ndarray | None) -> "_Steering":
-        """This steering with the given bins' steering replaced (power bins ``power_rel`` of the
-        power range, audio bins ``audio_rel`` of all bins), e.g. by adaptive weights."""
+    def own_copy(self) -> "_Steering":
+        """This steering with power and audio products of its own, whose bins can be changed in
+        place (``power.set_bins``, ``audio.set_bins``), e.g. to adaptive weights."""
         out = object.__new__(_Steering)
         out.__dict__.update(self.__dict__)
-        out.power = self.power.with_bins(power_rel, power_h) if len(power_rel) and power_h is not None else \
-            self.power
-        if self.audio is not None and audio_rel is not None and len(audio_rel):
-            out.audio = self.audio.with_bins(audio_rel, audio_h)
+        out.power = self.power.own_copy()
+        out.audio = None if self.audio is None else self.audio.own_copy()
         return out
 
     @property
