@@ -274,3 +274,114 @@ def test_any_call_sizes_and_thread_counts_give_the_one_thread_output(sizes, thre
     if len(x):
         np.testing.assert_array_equal(an, a1)
         np.testing.assert_array_equal(pn, p1)
+
+
+def _steer_case(rng, blocks=3, width=40, k0=4, n_bins=30, rows=12, beams=11, lanes=8):
+    """Arguments of the compiled steer loop for complex steering ``q`` (bins, beams, rows) on row
+    spectra ``spec`` (blocks, width, rows), and the product numpy forms in double precision."""
+    q = (rng.standard_normal((n_bins, beams, rows)) + 1j * rng.standard_normal((n_bins, beams, rows)))
+    spec = (rng.standard_normal((blocks, width, rows)) + 1j * rng.standard_normal((blocks, width, rows)))
+    spec = spec.astype(np.complex64)
+    groups = -(-beams // lanes)
+    padded = np.pad(q, ((0, 0), (0, groups * lanes - beams), (0, 0)))
+    planes = padded.reshape(n_bins, groups, lanes, rows).transpose(1, 0, 3, 2)
+    h_re, h_im = (np.ascontiguousarray(p, dtype=np.float32) for p in (planes.real, planes.imag))
+    main_out, mirror_out = np.arange(beams, dtype=np.int32), np.full(beams, -1, np.int32)
+    want = np.einsum("kbm,jkm->jbk", q.astype(np.complex64).astype(np.complex128),
+                     spec[:, k0:k0 + n_bins].astype(np.complex128))
+
+    def args(y, team):
+        return (h_re, h_im, spec, blocks, width, k0, n_bins, rows, rows, beams, main_out, mirror_out, beams, y,
+                lanes, team)
+
+    return args, want, (blocks, beams, n_bins)
+
+
+@compiled_only
+def test_a_started_call_gives_the_sums_however_it_is_ended(rng):
+    """``steer_start`` hands the sums to the helpers and returns; ``join``, a later team call of the
+    same thread, closing the team, dropping the handle or a join from another thread all end it with
+    the sums the blocking call gives (numpy's double-precision product as the reference: float32
+    sums of 12 terms, relative 1e-5)."""
+    import threading
+
+    from beamtap.service.engine.products import _kernels
+
+    args, want, shape = _steer_case(rng)
+    ref = np.empty(shape, np.complex64)
+    _kernels.steer(*args(ref, None))
+    np.testing.assert_allclose(ref, want, rtol=1e-5, atol=1e-5 * np.abs(want).max())
+
+    team = _kernels.Team(2)
+    refs = sys.getrefcount(team)
+    # joined: twice is harmless
+    y = np.empty(shape, np.complex64)
+    call = _kernels.steer_start(*args(y, team))
+    call.join()
+    call.join()
+    np.testing.assert_array_equal(y, ref)
+    # a team call of the same thread ends the started one first (no deadlock, both right)
+    y, f = np.empty(shape, np.complex64), np.empty(shape, np.complex64)
+    call = _kernels.steer_start(*args(y, team))
+    _kernels.steer(*args(f, team))
+    call.join()
+    np.testing.assert_array_equal(y, ref)
+    np.testing.assert_array_equal(f, ref)
+    # dropped without a join: the handle waits for the helpers before it lets the buffers go
+    y = np.empty(shape, np.complex64)
+    _kernels.steer_start(*args(y, team))
+    np.testing.assert_array_equal(y, ref)
+    # joined from another thread; then the owner's next call releases the team
+    y = np.empty(shape, np.complex64)
+    call = _kernels.steer_start(*args(y, team))
+    joiner = threading.Thread(target=call.join)
+    joiner.start()
+    joiner.join(timeout=30)
+    assert not joiner.is_alive()
+    np.testing.assert_array_equal(y, ref)
+    f = np.empty(shape, np.complex64)
+    _kernels.steer(*args(f, team))
+    np.testing.assert_array_equal(f, ref)
+    # closed while a call runs: close ends it first
+    y = np.empty(shape, np.complex64)
+    call = _kernels.steer_start(*args(y, team))
+    team.close()
+    call.join()
+    np.testing.assert_array_equal(y, ref)
+    assert team.threads == 1
+    del call
+    assert sys.getrefcount(team) == refs  # every handle gave its reference back
+    # no helpers: the call runs at once
+    y = np.empty(shape, np.complex64)
+    _kernels.steer_start(*args(y, None)).join()
+    np.testing.assert_array_equal(y, ref)
+
+
+@compiled_only
+def test_a_started_call_refuses_what_the_blocking_call_refuses(rng):
+    from beamtap.service.engine.products import _kernels
+
+    args, _, shape = _steer_case(rng)
+    team = _kernels.Team(2)
+    good = list(args(np.empty(shape, np.complex64), team))
+    refs = sys.getrefcount(team)
+    bad_cases = [
+        (15, "not a team", TypeError, "team"),
+        (14, 5, ValueError, "lanes"),
+        (13, np.empty(3, np.complex64), ValueError, "y"),
+        (5, 20, ValueError, "outside the spectra"),  # k0 + n_bins past the spectra's width
+        (2, "spectra", TypeError, None),
+        (13, np.empty(shape, np.complex64)[:, :, ::2], (TypeError, ValueError, BufferError), None),
+    ]
+    for index, value, error, message in bad_cases:
+        call = list(good)
+        call[index] = value
+        with pytest.raises(error, match=message):
+            _kernels.steer_start(*call)
+        with pytest.raises(error, match=message):
+            _kernels.steer(*call)
+    del call
+    assert sys.getrefcount(team) == refs  # a refused call keeps no reference to the team
+    y = np.empty(shape, np.complex64)
+    _kernels.steer_start(*args(y, team)).join()  # and the team still works
+    assert np.isfinite(y).all()

@@ -443,11 +443,17 @@ struct Team {
     pthread_cond_t wake;
     atomic_ullong ticket; /* (call << PART_BITS) | next part to claim */
     atomic_int done;      /* parts of the current call finished */
+    atomic_int call_parts; /* parts of the current call (written before its ticket) */
     unsigned long long call;
     unsigned long alert; /* bumped by team_wake (under lock): sleepers wake and spin again */
     int stop;
     part_fn fn;
     void *job;
+    /* A call started by team_start and not yet ended: call_lock stays held by its owner, the
+     * thread that started it, until team_end (its join, or its next call on this team). */
+    atomic_int open;
+    unsigned long long open_call;
+    pthread_t open_owner;
 };
 
 static inline void relax(void)
@@ -468,17 +474,20 @@ static long long now_ns(void)
 
 /* Claim and run parts of the current call until none is left. A successful claim pins the call:
  * it cannot finish (nor fn and job change) before the claimed part is done. */
-static void team_work(Team *t)
+static unsigned long long team_work(Team *t)
 {
+    /* Returns the exhausted ticket it saw last. A claim is a compare-and-swap of the whole ticket,
+     * call number included, so a stale ticket never claims a part of a later call. */
     unsigned long long s = atomic_load_explicit(&t->ticket, memory_order_acquire);
-    while ((s & PART_MASK) < (unsigned long long)t->parts) {
+    while ((s & PART_MASK) < (unsigned long long)t->call_parts) {
         if (atomic_compare_exchange_weak_explicit(&t->ticket, &s, s + 1, memory_order_acq_rel,
                                                   memory_order_acquire)) {
-            t->fn(t->job, (int)(s & PART_MASK), t->parts);
+            t->fn(t->job, (int)(s & PART_MASK), t->call_parts);
             atomic_fetch_add_explicit(&t->done, 1, memory_order_release);
             s = atomic_load_explicit(&t->ticket, memory_order_acquire);
         }
     }
+    return s;
 }
 
 static void *helper_main(void *arg)
@@ -512,33 +521,93 @@ static void *helper_main(void *arg)
         pthread_mutex_unlock(&t->lock);
         if (stop)
             return NULL;
-        team_work(t);
         /* wait for the next call: a ticket other than this call's exhausted one */
-        seen = (s & ~PART_MASK) | (unsigned long long)t->parts;
+        seen = team_work(t);
     }
 }
 
-/* fn(job, part, parts) for every part; called without the GIL. */
-static void team_run(Team *t, part_fn fn, void *job)
+static int team_usable(const Team *t) { return t != NULL && t->started && t->pid == (long)getpid(); }
+
+static void run_inline(part_fn fn, void *job, int parts)
 {
-    if (t == NULL || t->started == 0 || t->pid != (long)getpid()) {
-        int parts = t == NULL ? 1 : t->parts;
-        for (int p = 0; p < parts; p++)
-            fn(job, p, parts);
-        return;
-    }
+    for (int p = 0; p < parts; p++)
+        fn(job, p, parts);
+}
+
+/* Finish the open call on this thread: claim what is left, wait for the rest, release the team. */
+static void team_end(Team *t)
+{
+    team_work(t);
+    while (atomic_load_explicit(&t->done, memory_order_acquire) < t->call_parts)
+        relax();
+    t->open = 0;
+    pthread_mutex_unlock(&t->call_lock);
+}
+
+/* Hand the parts of fn(job) to the team; the caller holds call_lock after it. */
+static void team_begin(Team *t, part_fn fn, void *job, int parts)
+{
+    if (t->open && pthread_equal(t->open_owner, pthread_self()))
+        team_end(t); /* this thread's started call ends before the next begins */
     pthread_mutex_lock(&t->call_lock); /* one call at a time */
-    t->fn = fn, t->job = job;
+    t->fn = fn, t->job = job, t->call_parts = parts;
     atomic_store_explicit(&t->done, 0, memory_order_relaxed);
     t->call++;
     pthread_mutex_lock(&t->lock);
     atomic_store_explicit(&t->ticket, t->call << PART_BITS, memory_order_release);
     pthread_cond_broadcast(&t->wake);
     pthread_mutex_unlock(&t->lock);
+}
+
+/* fn(job, part, parts) for every part of `parts`; called without the GIL. */
+static void team_run_parts(Team *t, part_fn fn, void *job, int parts)
+{
+    if (!team_usable(t)) {
+        run_inline(fn, job, parts);
+        return;
+    }
+    team_begin(t, fn, job, parts);
+    team_end(t);
+}
+
+/* One part per thread: for loops whose parts keep per-thread state (scratch, partial results). */
+static void team_run(Team *t, part_fn fn, void *job)
+{
+    team_run_parts(t, fn, job, t == NULL ? 1 : t->parts);
+}
+
+/* Parts for loops without per-thread state: several per thread, claimed as threads come free,
+ * so a thread that arrives late (busy with other work, or descheduled) finds work left. */
+static int fine_parts(const Team *t) { return t == NULL ? 1 : 4 * t->parts; }
+
+/* Start fn(job) on the helpers and return at once, so the caller can do other work (outside
+ * this team) meanwhile; team_join finishes it. Returns the call's number, or 0 when it ran
+ * here to the end (no helpers). Called without the GIL. */
+static unsigned long long team_start(Team *t, part_fn fn, void *job, int parts)
+{
+    if (!team_usable(t)) {
+        run_inline(fn, job, parts);
+        return 0;
+    }
+    team_begin(t, fn, job, parts);
+    t->open_call = t->call, t->open_owner = pthread_self();
+    t->open = 1;
+    return t->call;
+}
+
+/* Wait until started call `call` is done, working on its parts meanwhile. Its owner also
+ * releases the team; another thread leaves that to the owner's next call. */
+static void team_join(Team *t, unsigned long long call)
+{
+    if (call == 0 || !t->open || t->open_call != call)
+        return; /* ran inline, or ended by a later call of its owner */
+    if (pthread_equal(t->open_owner, pthread_self())) {
+        team_end(t);
+        return;
+    }
     team_work(t);
-    while (atomic_load_explicit(&t->done, memory_order_acquire) < t->parts)
+    while (atomic_load_explicit(&t->done, memory_order_acquire) < t->call_parts)
         relax();
-    pthread_mutex_unlock(&t->call_lock);
 }
 
 static PyObject *team_new(PyTypeObject *type, PyObject *args, PyObject *kwds)
@@ -583,10 +652,13 @@ static PyObject *team_new(PyTypeObject *type, PyObject *args, PyObject *kwds)
 static void team_stop(Team *t)
 {
     if (t->pid == (long)getpid() && t->started) {
+        if (t->open && pthread_equal(t->open_owner, pthread_self()))
+            team_end(t);
         pthread_mutex_lock(&t->call_lock);
         pthread_mutex_lock(&t->lock);
         t->stop = 1;
         t->call++;
+        t->call_parts = 0; /* the stop ticket has no parts to claim */
         atomic_store_explicit(&t->ticket, (t->call << PART_BITS) | (unsigned long long)t->parts,
                               memory_order_release);
         pthread_cond_broadcast(&t->wake);
@@ -710,18 +782,31 @@ static void steer_part(void *arg, int part, int parts)
                                       part_start(j->n_bins, part, parts), part_start(j->n_bins, part + 1, parts));
 }
 
-static PyObject *py_steer(PyObject *self, PyObject *args)
+/* One steer call's job and the buffers it holds until the sums are done. */
+struct steer_call {
+    struct steer_job job;
+    Py_buffer h_re, h_im, v, main_out, mirror_out, y;
+    Team *team; /* borrowed from the arguments; a started call keeps its own reference */
+};
+
+static void steer_release(struct steer_call *c)
 {
-    (void)self;
-    Py_buffer h_re, h_im = {0}, v, main_out, mirror_out, y;
+    Py_buffer *const held[] = {&c->h_re, &c->h_im, &c->v, &c->main_out, &c->mirror_out, &c->y};
+    release_all(held, 6);
+}
+
+/* Parse and check steer's arguments into `c` (zeroed by the caller). On error: exception set,
+ * buffers released, 0 returned. */
+static int steer_prepare(PyObject *args, struct steer_call *c)
+{
     PyObject *h_im_obj, *team_obj = NULL;
-    Team *team;
     Py_ssize_t n_blocks, v_bins, k0, n_bins, n_rows, n_plain, n_beams, n_out, lanes;
-    if (!PyArg_ParseTuple(args, "y*Oy*nnnnnnny*y*nw*n|O", &h_re, &h_im_obj, &v, &n_blocks, &v_bins, &k0, &n_bins,
-                          &n_rows, &n_plain, &n_beams, &main_out, &mirror_out, &n_out, &y, &lanes, &team_obj))
-        return NULL;
+    if (!PyArg_ParseTuple(args, "y*Oy*nnnnnnny*y*nw*n|O", &c->h_re, &h_im_obj, &c->v, &n_blocks, &v_bins, &k0,
+                          &n_bins, &n_rows, &n_plain, &n_beams, &c->main_out, &c->mirror_out, &n_out, &c->y, &lanes,
+                          &team_obj))
+        return 0;
     int has_im = h_im_obj != Py_None;
-    int ok = as_team(team_obj, &team) && (has_im ? PyObject_GetBuffer(h_im_obj, &h_im, PyBUF_SIMPLE) == 0 : 1);
+    int ok = as_team(team_obj, &c->team) && (has_im ? PyObject_GetBuffer(h_im_obj, &c->h_im, PyBUF_SIMPLE) == 0 : 1);
     if (ok && lanes != 4 && lanes != 8) {
         PyErr_SetString(PyExc_ValueError, "steer: lanes must be 4 or 8");
         ok = 0;
@@ -732,28 +817,106 @@ static PyObject *py_steer(PyObject *self, PyObject *args)
         PyErr_SetString(PyExc_ValueError, "steer: bin or row range outside the spectra");
         ok = 0;
     }
-    ok = ok && need(&h_re, cells, 4, "h_re") && (!has_im || need(&h_im, cells, 4, "h_im"))
-         && need(&v, n_blocks * n_rows * v_bins, 8, "v") && need(&y, n_blocks * n_bins * n_out, 8, "y")
-         && need(&main_out, n_beams, 4, "main_out") && need(&mirror_out, n_beams, 4, "mirror_out");
-    const int *mo = (const int *)main_out.buf, *mm = (const int *)mirror_out.buf;
+    ok = ok && need(&c->h_re, cells, 4, "h_re") && (!has_im || need(&c->h_im, cells, 4, "h_im"))
+         && need(&c->v, n_blocks * n_rows * v_bins, 8, "v") && need(&c->y, n_blocks * n_bins * n_out, 8, "y")
+         && need(&c->main_out, n_beams, 4, "main_out") && need(&c->mirror_out, n_beams, 4, "mirror_out");
+    const int *mo = (const int *)c->main_out.buf, *mm = (const int *)c->mirror_out.buf;
     for (Py_ssize_t b = 0; ok && b < n_beams; b++)
         if (mo[b] < 0 || mo[b] >= n_out || mm[b] < -1 || mm[b] >= n_out) {
             PyErr_SetString(PyExc_ValueError, "steer: output beam index outside the output");
             ok = 0;
         }
-    if (ok) {
-        struct steer_job job = {(const float *)h_re.buf, has_im ? (const float *)h_im.buf : NULL, (const float *)v.buf,
-                                n_blocks, v_bins, k0, n_bins, n_rows, n_plain, n_beams, n_out, lanes, mo, mm,
-                                (float *)y.buf};
-        Py_BEGIN_ALLOW_THREADS
-        team_run(team, steer_part, &job);
-        Py_END_ALLOW_THREADS
+    if (!ok) {
+        steer_release(c);
+        return 0;
     }
-    Py_buffer *const held[] = {&h_re, &h_im, &v, &main_out, &mirror_out, &y};
-    release_all(held, 6);
-    if (!ok)
+    c->job = (struct steer_job){(const float *)c->h_re.buf, has_im ? (const float *)c->h_im.buf : NULL,
+                                (const float *)c->v.buf, n_blocks, v_bins, k0, n_bins, n_rows, n_plain, n_beams,
+                                n_out, lanes, mo, mm, (float *)c->y.buf};
+    return 1;
+}
+
+static PyObject *py_steer(PyObject *self, PyObject *args)
+{
+    (void)self;
+    struct steer_call c;
+    memset(&c, 0, sizeof c);
+    if (!steer_prepare(args, &c))
         return NULL;
+    Py_BEGIN_ALLOW_THREADS
+    team_run_parts(c.team, steer_part, &c.job, fine_parts(c.team));
+    Py_END_ALLOW_THREADS
+    steer_release(&c);
     Py_RETURN_NONE;
+}
+
+/* A steer call running on the team's helpers: join() waits for it and frees its buffers. */
+typedef struct {
+    PyObject_HEAD
+    struct steer_call c;
+    unsigned long long call; /* the team's call number; 0: done (ran inline, or joined) */
+} Started;
+
+static void started_finish(Started *s)
+{
+    if (s->call) {
+        Py_BEGIN_ALLOW_THREADS
+        team_join(s->c.team, s->call);
+        Py_END_ALLOW_THREADS
+        s->call = 0;
+    }
+    steer_release(&s->c);
+    Py_CLEAR(s->c.team);
+}
+
+static PyObject *started_join(Started *s, PyObject *unused)
+{
+    (void)unused;
+    started_finish(s);
+    Py_RETURN_NONE;
+}
+
+static void started_dealloc(Started *s)
+{
+    started_finish(s); /* never free buffers the helpers may still write */
+    Py_TYPE(s)->tp_free((PyObject *)s);
+}
+
+static PyMethodDef started_methods[] = {
+    {"join", (PyCFunction)started_join, METH_NOARGS,
+     "join(): wait until the call is done (working on its parts meanwhile); its output is then ready."},
+    {NULL, NULL, 0, NULL},
+};
+
+static PyTypeObject StartedType = {
+    PyVarObject_HEAD_INIT(NULL, 0).tp_name = "beamtap.service.engine._kernels.Started",
+    .tp_basicsize = sizeof(Started),
+    .tp_flags = Py_TPFLAGS_DEFAULT,
+    .tp_doc = "A kernel call started on a team's helpers (steer_start); join() before reading its output.",
+    .tp_dealloc = (destructor)started_dealloc,
+    .tp_methods = started_methods,
+};
+
+static PyObject *py_steer_start(PyObject *self, PyObject *args)
+{
+    (void)self;
+    Started *s = PyObject_New(Started, &StartedType);
+    if (s == NULL)
+        return NULL;
+    memset(&s->c, 0, sizeof s->c);
+    s->call = 0;
+    if (!steer_prepare(args, &s->c)) {
+        s->c.team = NULL; /* borrowed until here */
+        Py_DECREF(s);
+        return NULL;
+    }
+    Py_XINCREF(s->c.team);
+    unsigned long long call;
+    Py_BEGIN_ALLOW_THREADS
+    call = team_start(s->c.team, steer_part, &s->c.job, fine_parts(s->c.team));
+    Py_END_ALLOW_THREADS
+    s->call = call;
+    return (PyObject *)s;
 }
 
 struct rows_job {
@@ -1023,6 +1186,9 @@ static PyMethodDef methods[] = {
     {"steer", py_steer, METH_VARARGS,
      "steer(h_re, h_im, v, n_blocks, v_bins, k0, n_bins, n_rows, n_plain, n_beams, main_out, mirror_out, n_out, y, "
      "lanes[, team]): per-bin steered sums, beams in groups of lanes (4 or 8); the bins split across the team."},
+    {"steer_start", py_steer_start, METH_VARARGS,
+     "steer_start(... the arguments of steer ...) -> Started: steer started on the team's helpers, returning at "
+     "once; y is ready after join(). A team call made meanwhile by the same thread ends it first."},
     {"quadform", py_quadform, METH_VARARGS,
      "quadform(y, n_rows, row_stride, first, width, f, f_cols, out[, team]): out[q] = |y[q, first:first+width] @ f|^2 "
      "for float rows of y; f (width, f_cols) with f_cols a multiple of 16; the rows split across the team."},
@@ -1042,7 +1208,7 @@ static struct PyModuleDef module = {PyModuleDef_HEAD_INIT, "_kernels", "Compiled
 
 PyMODINIT_FUNC PyInit__kernels(void)
 {
-    if (PyType_Ready(&TeamType) < 0)
+    if (PyType_Ready(&TeamType) < 0 || PyType_Ready(&StartedType) < 0)
         return NULL;
     PyObject *m = PyModule_Create(&module);
     if (m == NULL)

@@ -32,7 +32,7 @@ from . import cost, shading, steering
 from .adaptive import AdaptiveSettings
 from .basis import _Basis
 from .geometry import ArrayGeometry
-from .products import COMPILED_AVAILABLE, KERNELS_MISSING, _BeamProduct, _kernels, need
+from .products import COMPILED_AVAILABLE, KERNELS_MISSING, _kernels, need
 from .steerdata import _Steering
 from .transform import cache_aligned, irfft_columns
 
@@ -499,16 +499,22 @@ class Beamformer:
             spec = steer.fft(frame)  # (n_fft//2+1, rows), one FFT serves both paths
             if self.on_spectra is not None:
                 self.on_spectra(spec)
-            if n_audio:
-                audio[pos:pos + b] = self._audio(spec, b, n_fft)
+            y_audio = steer.audio(spec[None]) if n_audio else None
             self._sample += b
-            pos += b
             # A row never describes time before the input began (since the start or the last reset).
+            power = None
             if b == to_boundary and self._sample - self.block_frames - delay >= self._power_origin:
                 self._pending_start.append(self._sample - self.block_frames)
                 self._pending_spec.append(spec[steer.k1:steer.k2 + 1])  # a view: spec is new every frame
                 if len(self._pending_start) >= self.power_batch_blocks:
-                    released.append(self._release_power())
+                    # The helpers form the power beams while this thread does the audio's
+                    # inverse FFT, which is not split across the team.
+                    power = self._start_power()
+            if n_audio:
+                audio[pos:pos + b] = self._audio(y_audio, spec, b, n_fft, self._sample - b)
+            if power is not None:
+                released.append(self._finish_power(*power))
+            pos += b
         rows = _concat_results(released, len(steer.bands), len(steer.beams.power_deg))
         return BlockResult(first, audio, rows[0], rows[1], nan_count, clip_count)
 
@@ -550,35 +556,45 @@ class Beamformer:
         return _kernels.rows(chunk, len(chunk), chunk.shape[1], ia, ib, ca, cb, len(ia), self._buf, len(self._buf),
                              self._pos, self._team)
 
-    def _audio(self, spec: np.ndarray, b: int, n_fft: int) -> np.ndarray:
-        steer = self._steer[0]
-        y = _beam_audio(steer.audio, spec, b, n_fft)
+    def _audio(self, steered: tuple, spec: np.ndarray, b: int, n_fft: int, first: int) -> np.ndarray:
+        """The audio beams' last ``b`` samples (frames from stream index ``first``) from their steered
+        spectra ``steered`` (``steer.audio`` of this frame's ``spec``), crossfaded after a retarget."""
+        y = _audio_frames(steered, b, n_fft)
         if self._fade_from is not None:
             old, old_n, start = self._fade_from
-            n = self._sample + np.arange(b)
+            n = first + np.arange(b)
             ramp = np.clip((n - start + 0.5) / self.crossfade_frames, 0.0, 1.0)[:, None].astype(np.float32)
             kept = 0 if old.audio is None else min(old.audio.n_beams, y.shape[1])
             if kept:
                 # The old beams need the old frame length's spectra when the retarget changed it.
                 old_spec = spec if old_n == n_fft else old.fft(self._buf[self._pos - old_n:self._pos])
-                y_old = _beam_audio(old.audio, old_spec, b, old_n)[:, :kept]
+                y_old = _audio_frames(old.audio(old_spec[None]), b, old_n)[:, :kept]
                 y[:, :kept] = ramp * y[:, :kept] + (1.0 - ramp) * y_old
             y[:, kept:] *= ramp  # beams new in this set rise from silence
-            if self._sample + b >= start + self.crossfade_frames:
+            if first + b >= start + self.crossfade_frames:
                 self._fade_from = None
         return y
 
     def _release_power(self) -> tuple:
-        steer = self._steer[0]
         if not self._pending_start:
+            steer = self._steer[0]
             return _empty_rows(len(steer.bands), len(steer.beams.power_deg))
+        return self._finish_power(*self._start_power())
+
+    def _start_power(self) -> tuple:
+        """Hand the waiting blocks' power beams to the team; :meth:`_finish_power` takes them back."""
+        steer = self._steer[0]
         pending = self._pending_spec
         # (K, bins from k1, rows); one block (unbatched power) needs no copy: a view of its spectra
         spec = pending[0][None] if len(pending) == 1 and pending[0].flags.c_contiguous else np.stack(pending)
         # Rows are stamped with the input span they describe: block start less D and the band delay.
         starts = np.array(self._pending_start, np.int64) - (self.bulk_delay_samples + steer.band_delay)
         self._pending_start, self._pending_spec = [], []
-        y, _ = steer.power(spec, offset=steer.k1)  # (K, beams, bins); the band factors hold the lag
+        y, _, call = steer.power.start(spec, offset=steer.k1)  # (K, beams, bins); the band factors hold the lag
+        return steer, y, call, starts
+
+    def _finish_power(self, steer, y: np.ndarray, call, starts: np.ndarray) -> tuple:
+        call.join()
         out = np.empty((len(starts), len(steer.bands), y.shape[1]), np.float32)
         for i, ev in enumerate(steer.bands):
             lo = int(ev.bins[0]) - steer.k1
@@ -590,9 +606,9 @@ class Beamformer:
         return out, starts
 
 
-def _beam_audio(product: _BeamProduct, spec: np.ndarray, b: int, n_fft: int) -> np.ndarray:
-    """The last ``b`` samples of the audio beams from one frame's channel spectra."""
-    y, lag = product(spec[None])
+def _audio_frames(steered: tuple, b: int, n_fft: int) -> np.ndarray:
+    """The last ``b`` samples of audio beams from one frame's steered spectra ``(Y, lag)``."""
+    y, lag = steered
     frame = irfft_columns(y[0].T, n_fft)  # (n_fft, beams)
     return frame[n_fft - b - lag:n_fft - lag]
 

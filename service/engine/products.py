@@ -113,15 +113,37 @@ class _BeamProduct:
         """Steered spectra (blocks, beams, bins) and their lag from row spectra
         ``spec`` (blocks, n, rows), complex64, C order, whose ``spec[:, i]``
         is bin ``offset + i``."""
+        if self.compiled:
+            y = self._compiled_sums(_kernels.steer, spec, offset)[0]
+            return y, self.lag
+        return self._numpy_sums(spec, offset)
+
+    def start(self, spec: np.ndarray, offset: int = 0) -> tuple:
+        """As ``__call__``, but handed to the team's helpers, returning at once:
+        ``(Y, lag, call)``, where ``Y`` is ready after ``call.join()``.
+
+        The calling thread is free meanwhile for work outside the team (the
+        audio's inverse FFT): a team call it makes first ends this one. Without
+        helpers the sums are formed here and ``call`` is already done.
+        """
+        if self.compiled and self.team is not None:
+            y, call = self._compiled_sums(_kernels.steer_start, spec, offset)
+            return y, self.lag, call
+        y, lag = self(spec, offset)
+        return y, lag, _DONE
+
+    def _compiled_sums(self, kernel, spec: np.ndarray, offset: int) -> tuple:
+        need(spec, np.complex64, "spec")
+        n_blocks, width, n_rows = spec.shape
+        y = np.empty((n_blocks, self.n_beams, self.n_bins), np.complex64)
+        call = kernel(self.h[0], self.h[1] if len(self.h) > 1 else None, spec, n_blocks, width,
+                      self.first_bin - offset, self.n_bins, n_rows, self.n_plain, len(self.main_out),
+                      self.main_out, self.mirror_out, self.n_beams, y, self.lanes, self.team)
+        return y, call
+
+    def _numpy_sums(self, spec: np.ndarray, offset: int) -> tuple:
         k0 = self.first_bin - offset
         n_blocks, width, n_rows = spec.shape
-        if self.compiled:
-            need(spec, np.complex64, "spec")
-            y = np.empty((n_blocks, self.n_beams, self.n_bins), np.complex64)
-            _kernels.steer(self.h[0], self.h[1] if len(self.h) > 1 else None, spec, n_blocks, width, k0,
-                           self.n_bins, n_rows, self.n_plain, len(self.main_out), self.main_out, self.mirror_out,
-                           self.n_beams, y, self.lanes, self.team)
-            return y, self.lag
         band = spec[:, k0:k0 + self.n_bins]
         if self.elementwise:  # h: (bins, beams, rows)
             return (self.h[0][None] * band[:, :, None, :]).sum(axis=3).transpose(0, 2, 1), 0
@@ -132,6 +154,17 @@ class _BeamProduct:
         n_bins, _, k = v.shape
         y = np.matmul(self.h[0], v.view(np.float32).reshape(n_bins, n_rows, 2 * k))
         return y.view(np.complex64).transpose(2, 1, 0), self.lag
+
+
+class _Done:
+    """A finished call (no helpers): joining it does nothing."""
+
+    @staticmethod
+    def join() -> None:
+        return None
+
+
+_DONE = _Done()
 
 
 def _mirror_beams(q: np.ndarray, n_sums: int) -> tuple:
