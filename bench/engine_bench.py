@@ -12,7 +12,8 @@ are the figures to trust.
 
 Threads: the same engine with 1 and with N threads (``Beamformer(threads=N)``),
 timed by the wall clock (the point of more threads is less waiting), the two
-alternating repeat by repeat; the speed-up is the median of the per-repeat
+alternating repeat by repeat, the N-thread engine after four untimed blocks
+that wake its helpers; the speed-up is the median of the per-repeat
 ratios. ``process`` end to end: ``beamtap process`` on a 10 s, 64-channel
 float WAV (made here) against the engine's own time on the same samples
 from memory (its construction, every block, the tail that flushes D, and
@@ -165,6 +166,11 @@ def measure_threads(n_sensors, n_beams, n_audio, batch, blocks, repeats, threads
     ticks0 = cpu_ticks()
     for _ in range(repeats):
         t1.append(_wall_per_block(one.process, x, blocks, block))
+        # Helpers that slept while the other engine ran start on the caller's core and run the
+        # first few blocks near one-thread speed (measured 2026-12-05: 670, 530, 470, 450 us, then
+        # 380-400); a continuous run, offline or live (whose helpers spin two block periods), does
+        # not pay that, so a few untimed blocks wake them first.
+        _wall_per_block(many.process, x, 4, block)
         c0 = time.process_time()
         tn.append(_wall_per_block(many.process, x, blocks, block))
         cpu_n.append((time.process_time() - c0) / blocks)

@@ -391,3 +391,90 @@ def test_a_sensor_row_engine_takes_over_a_mirror_pair_stream_exactly():
     a, b = rows.process(x[1024 * 6:]), ref.process(x[1024 * 6:])
     np.testing.assert_allclose(a.audio, b.audio, atol=2e-6)
     np.testing.assert_allclose(a.power_db, b.power_db, atol=1e-3)
+
+
+def _local_peaks(row_db, az_deg, lo_deg, hi_deg, within_db):
+    """Indices of the local maxima across the fan in [lo_deg, hi_deg] within ``within_db`` of the row's top."""
+    i = np.where((row_db[1:-1] > row_db[:-2]) & (row_db[1:-1] >= row_db[2:]))[0] + 1
+    return [j for j in i if row_db[j] > row_db.max() - within_db and lo_deg <= az_deg[j] <= hi_deg]
+
+
+def test_the_demo_mvdr_variant_separates_the_pinger_from_the_passing_boat():
+    """The demo config's commented MVDR lines, uncommented as a user would, against the demo as it is,
+    on the demo's own (invented) scene: a boat sweeping 30° -> 150° at 4°/s past a pinger at 118°.
+
+    While the boat is 6-12° from the pinger (inside delay-and-sum's Hann-shaded main lobe, about
+    16° wide here), delay-and-sum shows one lobe in every row; the MVDR beams keep the pinger as
+    a peak of its own, with a dip towards the boat. Measured 2026-12-05 on 140 rows: delay-and-sum
+    one peak in all; MVDR a pinger peak within 2° in 136, a median dip of 12.3 dB. The rule that
+    sources closer than a beamwidth merge for delay-and-sum and not for MVDR is common practice
+    (Van Trees 2002, §6.2, from memory); the thresholds here are this demo's claim in the README.
+    Detection (on, with its defaults) finds the boat and the pinger on the MVDR beams as it does
+    on delay-and-sum's.
+    """
+    from importlib.resources import files
+
+    from beamtap.service import config as cfg
+    from beamtap.service.assembly import make_beamformer, make_detection, make_scene
+
+    text = files("beamtap.service").joinpath("demo.toml").read_text()
+    commented = ['# method = "mvdr"', "# adaptive = {"]
+    assert all(line in text for line in commented), "the demo config lost its commented MVDR variant"
+    variant = text
+    for line in commented:
+        variant = variant.replace(line, line[2:])
+    detect_on = "\n[detect]\nenabled = true\n"
+    das_config, mvdr_config = cfg.loads(text + detect_on, "demo"), cfg.loads(variant + detect_on, "demo, MVDR")
+    assert (das_config.beams.method, mvdr_config.beams.method) == ("das", "mvdr")
+
+    fs, block = das_config.input.samplerate_hz, das_config.input.block_frames
+    scene = make_scene(das_config)
+    x = np.concatenate([scene.render(block) for _ in range(int(27.0 * fs / block))])
+    az = das_config.beams.power_deg[:, 0]
+    boat = das_config.input.scene[0]
+    pinger_deg = das_config.input.scene[1].azimuth_deg
+    results, found = {}, {}
+    for name, config in (("das", das_config), ("mvdr", mvdr_config)):
+        bf = make_beamformer(config)
+        stage = make_detection(config, config.beams, bf.band_filters)
+        rows, firsts, dets = [], [], []
+        for i in range(0, len(x), block):
+            out = bf.process(x[i:i + block])
+            rows.append(out.power_db[:, 0])
+            firsts.append(out.power_first_sample)
+            dets += [d for _, _, d, _, _ in stage.rows(out.power_db, out.power_first_sample,
+                                                        [None] * len(out.power_db))]
+        bf.close()
+        t = (np.concatenate(firsts) + block / 2) / fs
+        boat_deg = boat.azimuth_deg + boat.sweep_deg_per_s * t
+        apart = np.abs(boat_deg - pinger_deg)
+        close = (apart >= 6.0) & (apart <= 12.0) & (t > 5.0)
+        results[name] = np.concatenate(rows)[close]
+        # detections: the boat while it is well clear of the pinger, the pinger throughout
+        far = np.where((apart > 20.0) & (t > 5.0))[0]
+        found[name] = (np.mean([any(abs(d["bearing_deg"] - boat_deg[k]) < 4.0 for d in dets[k]) for k in far]),
+                       np.mean([any(abs(d["bearing_deg"] - pinger_deg) < 2.0 for d in dets[k])
+                                for k in np.where(t > 5.0)[0]]))
+    assert len(results["das"]) > 100  # about 3 s of rows on each side of the crossing
+    # Detection finds the sources on MVDR beams (measured 2026-12-05, share of rows with the boat
+    # while it is over 20° from the pinger / with the pinger: delay-and-sum 0.80 / 0.67, MVDR with
+    # its measured threshold 1.0 / 0.98; with the tail-quantile threshold it replaced, the boat
+    # was never detected on MVDR beams).
+    assert found["mvdr"][0] >= 0.9 and found["mvdr"][1] >= 0.9, found
+    assert found["das"][0] >= 0.7, found
+
+    # delay-and-sum: one lobe for both sources in every row
+    das_peaks = [len(_local_peaks(r, az, 90.0, 150.0, 10.0)) for r in results["das"]]
+    assert all(n == 1 for n in das_peaks), np.bincount(das_peaks)
+    # MVDR: the pinger apart, with a visible dip between it and the boat
+    separate, dips = 0, []
+    for row in results["mvdr"]:
+        peaks = _local_peaks(row, az, 90.0, 150.0, 10.0)
+        at_pinger = [j for j in peaks if abs(az[j] - pinger_deg) <= 2.0]
+        others = [j for j in peaks if j not in at_pinger]
+        if at_pinger and others:
+            separate += 1
+            lo, hi = sorted([at_pinger[0], others[0]])
+            dips.append(row[at_pinger[0]] - row[lo:hi + 1].min())
+    assert separate >= 0.9 * len(results["mvdr"]), (separate, len(results["mvdr"]))
+    assert np.median(dips) >= 5.0, np.median(dips)

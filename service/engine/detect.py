@@ -40,12 +40,20 @@ k, scale=1/k)`` (the chi-square detector of any detection-theory text, e.g.
 Kay 1998, Fundamentals of Statistical Signal Processing vol. II, ch. 2 and
 5). ``min_snr_db`` sets a floor under it.
 
-For adaptive beams that law does not hold (their output power is not a
-fixed quadratic form of the input); :class:`Detector` then sets the ratio
-threshold at the ``1 - pfa`` quantile of the background-normalised power it
-has measured in cells outside detected lobes (``law="measured"``): a
-running histogram of the ratio in dB, 0.05 dB bins, over the last
-``background_s``, refreshed every row.
+For adaptive beams the shape above does not hold: within a block their
+weights are fixed, so the block power is still a quadratic form in Gaussian
+variables, but of a filter (band filter times the adaptive response) that
+the weights change. :class:`Detector` then measures the law
+(``law="measured"``): a running histogram of the background-normalised
+power in dB, in cells outside detected lobes (0.05 dB bins, over the last
+``background_s``, refreshed every row), gives the median and the
+interquartile range; the gamma shape whose log has that interquartile range
+is the fitted shape, and the threshold is the measured median plus that
+law's distance from its median to its ``1 - pfa`` quantile. Quartiles, not
+the tail: a source that is never detected is a few per cent of the cells,
+which would set a tail quantile at its own level (a boat crossing the demo
+scene with MVDR beams was never detected that way: the threshold rose to
+27 dB) but moves the quartiles by a few per cent of their spread.
 
 Peaks. A detection is a beam that crosses the threshold and is a local
 maximum of power among its neighbours across the fan (one per lobe). Its
@@ -194,13 +202,15 @@ class Detector:
         self._step_db = _MEDIAN_SPAN_DB / rows
         # median of Gamma(k, 1/k): the noise's median over its mean, in dB
         self._median_db = np.array([10.0 * math.log10(gamma.median(k, scale=1.0 / k)) for k in self.shapes])
+        # the fitted law's threshold above its median (dB) for each shape of _SHAPES
+        self._tail_db = 10.0 * np.log10(gamma.isf(settings.pfa, _SHAPES) / gamma.median(_SHAPES))
         self._thr_db = 10.0 * np.log10(self.thresholds)[:, None]
 
     @property
     def thresholds(self) -> np.ndarray:
         """The ratio threshold of each band now (linear, power over background)."""
         if self.law == "measured" and self._hist is not None and self._hist.sum(axis=1).min() > 0:
-            thr = np.array([10.0 ** (_quantile_db(h, 1.0 - self.settings.pfa) / 10.0) for h in self._hist])
+            thr = np.array([10.0 ** (self._fitted_threshold_db(h) / 10.0) for h in self._hist])
         else:
             thr = self.gamma_threshold
         return np.maximum(thr, self._floor)
@@ -308,6 +318,13 @@ class Detector:
                         "level_db": round(level, 3), "snr_db": round(float(snr[band, beam]), 3)})
         return out
 
+    def _fitted_threshold_db(self, hist: np.ndarray) -> float:
+        """The measured median plus the fitted gamma law's median-to-tail distance (module notes)."""
+        q25, q50, q75 = _quantiles_db(hist, (0.25, 0.5, 0.75))
+        # _IQR_DB falls as the shape grows: np.interp wants it rising, hence the reversed tables
+        tail_db = np.interp(q75 - q25, _IQR_DB[::-1], self._tail_db[::-1])
+        return q50 + float(tail_db)
+
     def _measure(self, snr_db, quiet, weight) -> None:
         """The running histogram of the normalised power (dB) in quiet cells, for the measured threshold."""
         if self._hist is None:
@@ -321,10 +338,16 @@ class Detector:
 _HIST_EDGES = np.arange(-30.0, 40.0 + 0.05, 0.05)
 
 
-def _quantile_db(hist: np.ndarray, q: float) -> float:
-    cum = np.cumsum(hist)
-    i = int(np.searchsorted(cum, q * cum[-1]))
-    return float(_HIST_EDGES[min(i + 1, len(_HIST_EDGES) - 1)])
+def _quantiles_db(hist: np.ndarray, qs) -> list:
+    """Quantiles ``qs`` of a histogram over _HIST_EDGES, interpolated within a bin."""
+    cum = np.concatenate([[0.0], np.cumsum(hist)])
+    return [float(np.interp(q * cum[-1], cum, _HIST_EDGES)) for q in qs]
+
+
+#: Gamma shapes the measured law is fitted among (a block of a few samples' bandwidth up to a
+#: time-bandwidth product of 10^5), and the interquartile range of 10 log10 of each (dB).
+_SHAPES = np.logspace(-0.5, 5.0, 400)
+_IQR_DB = 10.0 * np.log10(gamma.ppf(0.75, _SHAPES) / gamma.ppf(0.25, _SHAPES))
 
 
 def _wrap_diff(d):
