@@ -234,3 +234,34 @@ def test_process_start_utc_dates_the_power_rows(scene, tmp_path):
     assert np.allclose(table.time_utc, start + table.first_sample / 16000, atol=1e-6)
     r = run("process", str(cfg), str(wav), "--out", str(tmp_path / "x"), "--start-utc", "yesterday")
     assert r.returncode == 2 and "--start-utc 'yesterday'" in r.stderr
+
+
+@pytest.mark.parametrize("audio_deg", ["[]", "[[71.5, 0.0]]"])
+def test_outputs_reach_the_writer_every_half_second_with_or_without_audio_beams(scene, tmp_path, monkeypatch,
+                                                                               audio_deg):
+    """``process`` hands its outputs to the writer thread about every half second of stream, so a long
+    input never piles up in memory; without audio beams too (the rows alone set the pace). The
+    count of rows written is spied on the real writer (its output is checked as well)."""
+    import importlib
+
+    from beamtap import powertable
+    from beamtap.service import offline
+    from beamtap.service.config import loads
+
+    proc = importlib.import_module("beamtap.service.offline.process")  # the module (offline.process is its function)
+
+    cfg, wav = scene
+    text = cfg.read_text().replace("audio_deg = [[71.5, 0.0], [20.0, 0.0]]", f"audio_deg = {audio_deg}")
+    config = loads(text, "tank.toml")
+    batches, write_batch = [], proc.Outputs.write_batch
+
+    def counted(self, audio, firsts, power_db):
+        batches.append(sum(len(f) for f in firsts))
+        return write_batch(self, audio, firsts, power_db)
+
+    monkeypatch.setattr(proc.Outputs, "write_batch", counted)
+    offline.process(config, wav, tmp_path / "out")
+    per_half_second = 16000 // 2 // 512  # 15 rows of 512 frames at 16 kHz
+    table = powertable.read(tmp_path / "out" / "power.csv")
+    assert sum(batches) == len(table.first_sample) > 4 * per_half_second  # 3 s of input
+    assert max(batches) <= per_half_second + 1, batches

@@ -191,7 +191,7 @@ def _beamform_into(plan: InputPlan, out: Path, bf, counts: dict, bar, batch_fram
             nonlocal held_frames
             batch_audio.append(a)
             held_frames += len(a)
-            if held_frames >= batch_frames or held_rows >= rows_per_batch:
+            if held_frames >= batch_frames:
                 hand_over()
 
         def on_power(firsts, power_db):
@@ -199,6 +199,8 @@ def _beamform_into(plan: InputPlan, out: Path, bf, counts: dict, bar, batch_fram
             batch_firsts.append(firsts)
             batch_power.append(power_db)
             held_rows += len(firsts)
+            if held_rows >= rows_per_batch:  # also without audio beams, whose callback never comes
+                hand_over()
 
         end_prev = None
         for run in plan.runs:
