@@ -18,7 +18,8 @@ import numpy as np
 
 from .engine.beamformer import BeamSet
 from .assembly import make_beamformer, make_detection, summary
-from .engine.mvdr import engine_for
+from .engine.basis import mirror_pair_rows_for
+from .engine.mvdr import AdaptiveBeamformer, engine_for
 from .tracking import TrackingThread
 
 log = logging.getLogger("beamtap.pipeline")
@@ -108,9 +109,11 @@ class Pipeline:
         """
         done = threading.Event()
         slot = {"beams": beams, "done": done, "id": None, "cancelled": False}
-        if beams.method == "mvdr" and self.engine.mirror_pair_rows:
-            # Adaptive beams need one history row per sensor: a new engine with that layout takes
-            # the stream over at the block boundary (its history from this one's, exactly).
+        wants_pairs = beams.method != "mvdr" and mirror_pair_rows_for(self.config.geometry)
+        if wants_pairs != self.engine.mirror_pair_rows:
+            # Adaptive beams need one history row per sensor, and delay-and-sum on a large symmetric
+            # array is faster on mirror-pair rows: a new engine with the layout the beams want takes
+            # the stream over at the block boundary (its history from this one's).
             slot["engine"] = make_beamformer(self.config, beams, threads=self.engine.threads, live=True)
             bands = slot["engine"].band_filters
         else:
@@ -191,7 +194,7 @@ class Pipeline:
                     return
                 self._release(self.engine.flush())
                 new = slot["engine"]
-                new.engine.take_over(self.engine)  # a mirror-pair engine is delay-and-sum: a plain one
+                _base(new).take_over(_base(self.engine))
                 self.engine.close()
                 self.engine = new
             else:
@@ -320,6 +323,7 @@ class Pipeline:
             + (["raw"] if self.config.publish.raw else []),
             **self.tracking.status(),
             "adaptive": self.engine.status() if self.engine.method == "mvdr" else None,
+            "engine_rows": "mirror pairs" if self.engine.mirror_pair_rows else "sensors",
         }
         if self.recorder is not None:
             out["record"] = self.recorder.status()
@@ -342,3 +346,8 @@ class Pipeline:
 
     def array_summary(self) -> dict:
         return summary(self.config, self.engine)
+
+
+def _base(engine):
+    """The delay-and-sum engine under ``engine`` (itself, or what adaptive beams are formed over)."""
+    return engine.engine if isinstance(engine, AdaptiveBeamformer) else engine

@@ -8,6 +8,7 @@ FFT phase shifts and white sensor noise.
 import math
 
 import numpy as np
+import pytest
 
 from beamtap.service.engine import ArrayGeometry, Beamformer
 from beamtap.service.engine.beamformer import BeamSet
@@ -303,7 +304,15 @@ def test_the_service_switches_method_live_and_reports_it(tmp_path):
         assert ctl.status()["adaptive"]["weight_updates"] >= 1
         assert not any(f.gap for f in frames) and ctl.status()["gaps"] == 0
         assert all(np.all(np.isfinite(f.data)) for f in frames)
-        assert ctl.status()["state"] == "running"
+        assert ctl.status()["state"] == "running" and ctl.status()["engine_rows"] == "sensors"
+        # and back: delay-and-sum on mirror-pair rows again (the faster layout), still without a gap
+        with Subscriber(svc.publish, topics=["audio", "power"], timeout_s=10) as sub:
+            ctl.beams(set={"method": "das"})
+            frames = [sub.recv() for _ in range(40)]
+        status = ctl.status()
+        assert status["engine_rows"] == "mirror pairs" and status["adaptive"] is None
+        assert not any(f.gap for f in frames) and status["gaps"] == 0 and status["state"] == "running"
+        assert all(np.all(np.isfinite(f.data)) for f in frames)
 
 
 def test_pattern_draws_the_adaptive_response_for_a_described_scene(tmp_path):
@@ -371,24 +380,26 @@ def test_hostile_input_and_requests_do_not_break_adaptive_beams(tmp_path):
         assert ctl.beams()["beams"]["method"] == "das" and ctl.status()["state"] == "running"
 
 
-def test_a_sensor_row_engine_takes_over_a_mirror_pair_stream_exactly():
+@pytest.mark.parametrize("to_pairs", [False, True])
+def test_an_engine_of_the_other_row_layout_takes_over_a_stream(to_pairs):
     """The mirror-pair rows' history turned back into sensor rows (x_a = (s + d) / 2, x_b = (s - d) / 2)
-    and handed to a sensor-row engine: its delay-and-sum output continues the pair engine's own,
-    to float32 rounding (the two layouts form the same sums)."""
+    and handed to a sensor-row engine, or sensor rows turned into pairs (s = x_a + x_b, d = x_a - x_b)
+    for a pair engine: its delay-and-sum output continues the first engine's own, to float32
+    rounding (the two layouts form the same sums)."""
     geo = ArrayGeometry.line(64, 0.5)
     beams = BeamSet(fan(0.0, 180.0, 3.0), [[70.0, 0.0]], bands_hz=[(300.0, 1400.0)])
     rng = np.random.default_rng(9)
     x = (0.1 * rng.standard_normal((1024 * 12, 64))).astype(np.float32)
-    pairs = Beamformer(geo, 1500.0, 48000.0, 1024, beams)
-    assert pairs.mirror_pair_rows
-    rows = Beamformer(geo, 1500.0, 48000.0, 1024, beams, pair_rows=False)
+    first = Beamformer(geo, 1500.0, 48000.0, 1024, beams, pair_rows=not to_pairs)
+    then = Beamformer(geo, 1500.0, 48000.0, 1024, beams, pair_rows=to_pairs)
+    assert (first.mirror_pair_rows, then.mirror_pair_rows) == (not to_pairs, to_pairs)
     ref = Beamformer(geo, 1500.0, 48000.0, 1024, beams)
-    pairs.process(x[:1024 * 6])
-    pairs.flush()
-    rows.take_over(pairs)
+    first.process(x[:1024 * 6])
+    first.flush()
+    then.take_over(first)
     ref.process(x[:1024 * 6])
     ref.flush()
-    a, b = rows.process(x[1024 * 6:]), ref.process(x[1024 * 6:])
+    a, b = then.process(x[1024 * 6:]), ref.process(x[1024 * 6:])
     np.testing.assert_allclose(a.audio, b.audio, atol=2e-6)
     np.testing.assert_allclose(a.power_db, b.power_db, atol=1e-3)
 

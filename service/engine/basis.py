@@ -15,6 +15,11 @@ from .geometry import ArrayGeometry
 #: Fewest sensors for which the mirror-pair rows pay for their extra pass over each block.
 _PAIR_BASIS_MIN_SENSORS = 48
 
+def mirror_pair_rows_for(geometry: ArrayGeometry) -> bool:
+    """Whether a delay-and-sum engine for ``geometry`` holds mirror-pair rows (see :class:`_Basis`)."""
+    return _Basis(geometry).pairs is not None
+
+
 class _Basis:
     """The rows the history buffer holds: sensor signals, or sums and
     differences of mirror pairs.
@@ -57,15 +62,21 @@ class _Basis:
 
     def write(self, out: np.ndarray, chunk: np.ndarray) -> None:
         """History ``out`` (frames, n_rows), one row per column, from input frames ``chunk`` (frames, channels)."""
-        x = chunk[:, self._cols]
+        self.from_sensors(chunk[:, self._cols], out)
+
+    def from_sensors(self, x: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """The active sensors' signals ``x`` (frames, sensors) as history rows (frames, n_rows), into
+        ``out`` when given: the inverse of :meth:`to_sensors`."""
+        out = np.empty((len(x), self.n_rows), x.dtype) if out is None else out
         if self.pairs is None:
             out[:] = x
-            return
+            return out
         sums = out[:, :self.n_sums]
         np.add(x[:, self._sa], x[:, self._sb], out=sums)
         if len(self._centre):
             sums[:, self._centre] *= 0.5
         np.subtract(x[:, self._da], x[:, self._db], out=out[:, self.n_sums:])
+        return out
 
     def to_sensors(self, rows: np.ndarray) -> np.ndarray:
         """History rows (frames, n_rows) back to the active sensors' signals (frames, sensors): the

@@ -337,16 +337,19 @@ class Beamformer:
 
         The two engines have the same array and block; ``other`` has had its
         pending power flushed. Its history is carried over, turned into sensor
-        rows when it held mirror-pair rows and this engine does not (exact:
-        the pairs' sums and differences give the sensors back), so the output
-        goes on without a restart (the way the service switches a mirror-pair
-        engine to adaptive beams). Where this engine's frame is longer, the
+        rows when it held mirror-pair rows and this engine does not (the
+        pairs' sums and differences give the sensors back), or into
+        mirror-pair rows the other way, so the output goes on without a
+        restart (the way the service switches a mirror-pair engine to
+        adaptive beams, and back). Where this engine's frame is longer, the
         samples before the other's frame read as zeros (as after a reset).
         """
         state = other.state()
         history = state.history
         if other.mirror_pair_rows and not self.mirror_pair_rows:
             history = other._basis.to_sensors(history)
+        elif self.mirror_pair_rows and not other.mirror_pair_rows:
+            history = self._basis.from_sensors(history)
         n_fft = self._steer[1]
         frame = np.zeros((n_fft, history.shape[1]), np.float32)
         take = min(n_fft, len(history))
