@@ -489,3 +489,27 @@ def test_the_demo_mvdr_variant_separates_the_pinger_from_the_passing_boat():
             dips.append(row[at_pinger[0]] - row[lo:hi + 1].min())
     assert separate >= 0.9 * len(results["mvdr"]), (separate, len(results["mvdr"]))
     assert np.median(dips) >= 5.0, np.median(dips)
+
+
+def test_mvdr_weight_updates_are_priced_and_admission_counts_them():
+    """The cost model adds an MVDR beam set's weight updates (averaged over an update period) to the
+    delay-and-sum work it is formed over; more frequent updates cost more; a beam set that
+    delay-and-sum can form in real time is refused as MVDR when its updates would not keep up,
+    with a one-line reason that names update_s. (The formula's constants were timed piece by piece
+    on 2026-12-05; against bench/mvdr_bench.py it gives 2.35 ms and 67 ms an update for the
+    16- and 64-sensor cases, measured 2.3 and 54 ms: DEVELOPERS.md.)"""
+    from dataclasses import replace
+
+    from beamtap.service.engine import cost
+
+    model = cost.model_for(ArrayGeometry.line(16, 0.5), 1500.0, 48000.0, 1024)
+    das = BeamSet(fan(0.0, 180.0, 0.05), bands_hz=[(300.0, 1400.0)])  # 3601 power beams
+    every = {u: replace(das, method="mvdr", adaptive=AdaptiveSettings(update_s=u)) for u in (0.02, 0.1, 1.0)}
+    base = model.price(das).work_ns
+    assert model.price(every[0.1], adaptive=False).work_ns == base  # what calibration measures against
+    extra = {u: model.price(b).work_ns - base for u, b in every.items()}
+    assert 0 < extra[1.0] < extra[0.1] < extra[0.02]
+    assert model.admit(das).share < model.max_block_share
+    model.admit(every[1.0])  # updated once a second: the same beams keep up
+    with pytest.raises(cost.AdmissionError, match="above max_block_share.*update_s"):
+        model.admit(every[0.02])

@@ -58,6 +58,23 @@ _NS_BLOCK = 30000.0
 # from the terms above). Cache size from memory, a typical last-level share of a server core pair.
 _NS_STREAM_BYTE = 0.06
 _CACHE_BYTES = 8 * 2**20
+# MVDR weight updates (2026-12-05, per-step timings of a 64-sensor, 181 + 8 beam update, slices of
+# 3-4 bins; see DEVELOPERS.md): Cholesky factors, their inverses and a quarter of the noise floor's
+# eigenvalues 1.2 ms a slice, per bin and M^3; the weights 0.8 ms, per bin, beam and M^2 (complex64
+# products); writing them into the steering 0.3 ms, per bin, beam and sensor; folding the blocks'
+# cross-spectra 0.3 ms, per bin, block and M^2; a slice's fixed numpy cost (a dozen calls and
+# their temporaries) from the 16-sensor update, 2.3 ms in one slice of which the terms above are 1.
+# Against bench/mvdr_bench.py the same day: 64 sensors 66 ms an update by this formula, 54 ms
+# measured; 16 sensors 2.3 ms and 2.3 ms.
+_NS_MVDR_CUBE = 1.3
+_NS_MVDR_WEIGHT = 0.3
+_NS_MVDR_SET = 7.0
+_NS_MVDR_FOLD = 0.9
+_NS_MVDR_SLICE = 1.3e6
+#: Work per slice of an MVDR update, in multiply-adds of M^3 per bin plus M^2 per beam and bin (M
+#: sensors): about 2 ms of one core here (measured 2026-12-05: 64 sensors, 181 + 8 beams, 3.5
+#: bins a slice took 4 ms with the engine's own block).
+MVDR_SLICE_WORK = 2_000_000
 
 
 class AdmissionError(ValueError):
@@ -156,6 +173,41 @@ def block_work(rows: int, n_power: int, n_audio: int, bands_hz, transition_hz, s
     return ns, steering_bytes + evaluator_bytes + history_bytes, n_fft
 
 
+def mvdr_slices(n_bins: int, sensors: int, n_power_bins: int, n_power: int, n_audio: int, update_frames: int,
+                block_frames: int) -> int:
+    """How many blocks (slices of the adaptive bins) one MVDR weight update is spread over: as many
+    as its work needs (:data:`MVDR_SLICE_WORK` each), within three quarters of the update period's
+    blocks so the new weights apply inside it; one where a slice's fixed cost would dominate.
+    ``n_power_bins`` of the ``n_bins`` adaptive bins carry the ``n_power`` power beams' weights."""
+    m = sensors
+    work = n_bins * (m ** 3 + m * m * (n_power_bins / max(n_bins, 1) * n_power + n_audio))
+    return max(1, min(n_bins, 3 * update_frames // (4 * block_frames), -(-int(work) // MVDR_SLICE_WORK)))
+
+
+def mvdr_update_ns(n_bins: int, sensors: int, n_power_bins: int, n_power: int, n_audio: int, update_frames: int,
+                   block_frames: int) -> float:
+    """Formula time (ns) of one MVDR weight update (the terms above :data:`MVDR_SLICE_WORK`)."""
+    m = sensors
+    beam_bins = n_power_bins * n_power + n_bins * n_audio
+    slices = mvdr_slices(n_bins, sensors, n_power_bins, n_power, n_audio, update_frames, block_frames)
+    return (_NS_MVDR_CUBE * n_bins * m ** 3 + _NS_MVDR_WEIGHT * beam_bins * m * m + _NS_MVDR_SET * beam_bins * m
+            + _NS_MVDR_FOLD * n_bins * m * m * max(1.0, update_frames / block_frames) + _NS_MVDR_SLICE * slices)
+
+
+def _mvdr_block_ns(rows: int, beams, n_fft: int, samplerate_hz: float, block_frames: int) -> float:
+    """An MVDR beam set's weight updates, spread over the blocks of an update period (ns a block)."""
+    settings = beams.adaptive
+    lo = min(b[0] for b in beams.bands_hz) if settings.band_hz is None else settings.band_hz[0]
+    hi = max(b[1] for b in beams.bands_hz) if settings.band_hz is None else settings.band_hz[1]
+    n_bins = int(math.ceil((hi - lo) * n_fft / samplerate_hz)) + 1
+    span = max(b[1] for b in beams.bands_hz) - min(b[0] for b in beams.bands_hz)
+    n_power_bins = min(n_bins, int(math.ceil(span * n_fft / samplerate_hz)) + 1)
+    update_frames = max(1, int(round(settings.update_s * samplerate_hz)))
+    per_update = mvdr_update_ns(n_bins, rows, n_power_bins, len(beams.power_deg), len(beams.audio_deg),
+                                update_frames, block_frames)
+    return per_update * block_frames / max(update_frames, block_frames)
+
+
 def check_memory(work_bytes: int, n_power: int, n_audio: int, rows: int, n_fft: int = 0) -> None:
     """Refuse a beam set whose steering data and band evaluators exceed :data:`MAX_WORK_BYTES`."""
     frame = f" with frames of {n_fft} samples" if n_fft else ""
@@ -195,11 +247,15 @@ class CostModel:
     scale: float = 1.0
     max_block_share: float = DEFAULT_MAX_BLOCK_SHARE
 
-    def price(self, beams) -> BlockCost:
-        """The :class:`BlockCost` of a :class:`~.beamformer.BeamSet` (nothing is built)."""
+    def price(self, beams, adaptive: bool = True) -> BlockCost:
+        """The :class:`BlockCost` of a :class:`~.beamformer.BeamSet` (nothing is built); MVDR beams'
+        weight updates included, averaged over the blocks of an update period, unless ``adaptive``
+        is false (the delay-and-sum work they are formed over)."""
         ns, nbytes, n_fft = block_work(self.rows, len(beams.power_deg), len(beams.audio_deg), beams.bands_hz,
                                        beams.transition_hz, self.samplerate_hz, self.block_frames,
                                        self.bulk_delay, min_frame_of(beams, self.samplerate_hz))
+        if adaptive and beams.method == "mvdr":
+            ns += _mvdr_block_ns(self.rows, beams, n_fft, self.samplerate_hz, self.block_frames)
         return BlockCost(ns, self.scale * ns * 1e-9, self.block_frames / self.samplerate_hz, nbytes, n_fft)
 
     def admit(self, beams, realtime: bool = True) -> BlockCost:
@@ -209,8 +265,9 @@ class CostModel:
         cost = self.price(beams)
         check_memory(cost.work_bytes, len(beams.power_deg), len(beams.audio_deg), self.rows, cost.n_fft)
         if realtime and cost.share > self.max_block_share:
+            mvdr = ", or for MVDR beams a longer update_s" if beams.method == "mvdr" else ""
             raise AdmissionError(f"{cost.describe()}: above max_block_share = {self.max_block_share:g}; "
-                                 "use fewer beams, fewer audio beams or narrower bands")
+                                 f"use fewer beams, fewer audio beams or narrower bands{mvdr}")
         return cost
 
 
@@ -237,7 +294,9 @@ def calibrate(model: CostModel, engine, beams, blocks: int = 24) -> CostModel:
         engine.process(x)
         times.append(time.perf_counter() - t0)
     engine.reset(0)  # the engine starts its stream afresh, as if the measurement never happened
-    formula_s = model.price(beams).work_ns * 1e-9
+    # The median block is a delay-and-sum block, also under MVDR beams (their updates are a few blocks
+    # of each period): the scale is measured against the delay-and-sum terms.
+    formula_s = model.price(beams, adaptive=False).work_ns * 1e-9
     scale = float(np.median(times)) / formula_s
     return CostModel(model.rows, model.samplerate_hz, model.block_frames, model.bulk_delay,
                      min(max(scale, 0.25), 20.0), model.max_block_share)

@@ -25,15 +25,12 @@ import numpy as np
 
 from .adaptive import AdaptiveSettings, CrossSpectra, loaded_factors, noise_power, weights_from_factors
 from .beamformer import Beamformer, BlockResult, _concat_results
+from .cost import mvdr_slices
 
 __all__ = ["AdaptiveBeamformer", "AdaptiveSettings", "engine_for"]
 
 #: Weight updates between two estimates of a bin's noise floor under the loading.
 _NOISE_EVERY = 4
-#: Work per slice of an update, in multiply-adds of M^3 per bin plus M^2 per beam and bin (M
-#: sensors): about 2 ms of one core here (measured 2026-12-05: 64 sensors, 181 + 8 beams, 3.5
-#: bins a slice took 4 ms with the engine's own block).
-_SLICE_WORK = 2_000_000
 
 
 class AdaptiveBeamformer:
@@ -172,20 +169,15 @@ class AdaptiveBeamformer:
 
     def _start_cycle(self) -> None:
         n_bins = len(self.bins)
-        # As many slices as the work needs (about 2 ms each here, see _SLICE_WORK), over at most three
-        # quarters of the update period's blocks: the new weights apply within it. Few sensors need
-        # one slice, where each slice's fixed cost (a dozen numpy calls) would dominate.
-        m = self.cross.n_sensors
-        work = n_bins * (m ** 3 + m * m * (len(self._p_sel) / max(n_bins, 1) * self.engine.beams.power_deg.shape[0]
-                                           + len(self.engine.beams.audio_deg)))
-        blocks = max(1, min(3 * self._update_frames // (4 * self.engine.block_frames), -(-int(work) // _SLICE_WORK)))
+        blocks = mvdr_slices(n_bins, self.cross.n_sensors, len(self._p_sel), self.engine.beams.power_deg.shape[0],
+                             len(self.engine.beams.audio_deg), self._update_frames, self.engine.block_frames)
         target = self._spares[0]
         engine = self.engine
         if target is engine._steer[0] or (engine._fade_from is not None and engine._fade_from[0] is target):
             # still in use (a crossfade longer than an update period): a fresh copy this time
             target = self._spares[0] = self._base.own_copy()
         self._cycle = {
-            "slices": np.array_split(np.arange(n_bins), min(n_bins, blocks)), "next": 0,
+            "slices": np.array_split(np.arange(n_bins), blocks), "next": 0,
             "steering": target,
         }
 
