@@ -15,6 +15,7 @@ from .geometry import ArrayGeometry
 #: Fewest sensors for which the mirror-pair rows pay for their extra pass over each block.
 _PAIR_BASIS_MIN_SENSORS = 48
 
+
 def mirror_pair_rows_for(geometry: ArrayGeometry) -> bool:
     """Whether a delay-and-sum engine for ``geometry`` holds mirror-pair rows (see :class:`_Basis`)."""
     return _Basis(geometry).pairs is not None

@@ -186,7 +186,7 @@ def mvdr_slices(n_bins: int, sensors: int, n_power_bins: int, n_power: int, n_au
 
 def mvdr_update_ns(n_bins: int, sensors: int, n_power_bins: int, n_power: int, n_audio: int, update_frames: int,
                    block_frames: int) -> float:
-    """Formula time (ns) of one MVDR weight update (the terms above :data:`MVDR_SLICE_WORK`)."""
+    """Formula time (ns) of one MVDR weight update (the ``_NS_MVDR_*`` terms of this module)."""
     m = sensors
     beam_bins = n_power_bins * n_power + n_bins * n_audio
     slices = mvdr_slices(n_bins, sensors, n_power_bins, n_power, n_audio, update_frames, block_frames)
