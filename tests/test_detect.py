@@ -308,10 +308,11 @@ def test_hostile_rows_do_not_break_the_stage():
 @given(kind=st.sampled_from(["fan", "circle", "grid", "scattered"]), n=st.integers(1, 40),
        rows=st.lists(st.lists(st.one_of(st.floats(-200, 50), st.just(float("nan")), st.just(float("inf")),
                                         st.just(float("-inf"))), min_size=1, max_size=1), min_size=1, max_size=40),
-       seed=st.integers(0, 2**16))
-def test_any_beam_set_and_any_rows_never_break_detection(kind, n, rows, seed):
+       seed=st.integers(0, 2**16), law=st.sampled_from(["gamma", "measured"]))
+def test_any_beam_set_and_any_rows_never_break_detection(kind, n, rows, seed, law):
     """Fuzzing (hypothesis): fans, full circles, grids and scattered directions of 1 to 40 beams,
-    rows of any values (NaN, infinities, huge): the stage never raises and reports sane values."""
+    rows of any values (NaN, infinities, huge), either threshold law: the stage never raises and
+    reports sane values."""
     rng = np.random.default_rng(seed)
     if kind == "fan":
         az = np.linspace(0.0, 180.0, n)
@@ -327,7 +328,7 @@ def test_any_beam_set_and_any_rows_never_break_detection(kind, n, rows, seed):
         az, el = rng.uniform(-180, 360, n), rng.uniform(-90, 90, n)
     power_deg = np.column_stack([az, el])
     stage = DetectionStage(power_deg, [np.hanning(33)], 256, FS, DetectSettings(pfa=0.2, min_snr_db=0.0),
-                           lobe_deg=float(rng.uniform(0.5, 30.0)))
+                           lobe_deg=float(rng.uniform(0.5, 30.0)), law=law)
     base = rng.normal(-60.0, 3.0, (len(rows) + 12, 1, n))
     for i, r in enumerate(rows):
         base[12 + i, 0, rng.integers(0, n)] = r[0]
@@ -339,3 +340,4 @@ def test_any_beam_set_and_any_rows_never_break_detection(kind, n, rows, seed):
         for t in tracks:
             assert np.isfinite(t["bearing_deg"]) and abs(t["rate_deg_per_s"]) <= 20.0
         assert all(isinstance(e, int) for e in ended)
+    assert np.all(np.isfinite(stage.detector.thresholds)) and np.all(stage.detector.thresholds > 0)
