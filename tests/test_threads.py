@@ -314,45 +314,42 @@ def test_a_started_call_gives_the_sums_however_it_is_ended(rng):
 
     team = _kernels.Team(2)
     refs = sys.getrefcount(team)
-    # joined: twice is harmless
-    y = np.empty(shape, np.complex64)
-    call = _kernels.steer_start(*args(y, team))
-    call.join()
-    call.join()
-    np.testing.assert_array_equal(y, ref)
-    # a team call of the same thread ends the started one first (no deadlock, both right)
-    y, f = np.empty(shape, np.complex64), np.empty(shape, np.complex64)
-    call = _kernels.steer_start(*args(y, team))
-    _kernels.steer(*args(f, team))
-    call.join()
-    np.testing.assert_array_equal(y, ref)
-    np.testing.assert_array_equal(f, ref)
-    # dropped without a join: the handle waits for the helpers before it lets the buffers go
-    y = np.empty(shape, np.complex64)
-    _kernels.steer_start(*args(y, team))
-    np.testing.assert_array_equal(y, ref)
-    # joined from another thread; then the owner's next call releases the team
-    y = np.empty(shape, np.complex64)
-    call = _kernels.steer_start(*args(y, team))
-    joiner = threading.Thread(target=call.join)
-    joiner.start()
-    joiner.join(timeout=30)
-    assert not joiner.is_alive()
-    np.testing.assert_array_equal(y, ref)
-    f = np.empty(shape, np.complex64)
-    _kernels.steer(*args(f, team))
-    np.testing.assert_array_equal(f, ref)
-    # closed while a call runs: close ends it first
-    y = np.empty(shape, np.complex64)
-    call = _kernels.steer_start(*args(y, team))
-    team.close()
-    call.join()
-    np.testing.assert_array_equal(y, ref)
-    assert team.threads == 1
-    del call
+
+    def sums():
+        return np.empty(shape, np.complex64)
+
+    def join_twice(call):  # twice is harmless
+        call.join()
+        call.join()
+
+    def another_call_first(call):  # a team call of the same thread ends the started one first
+        f = sums()
+        _kernels.steer(*args(f, team))
+        call.join()
+        np.testing.assert_array_equal(f, ref)
+
+    def dropped(call):  # the handle waits for the helpers before it lets the buffers go
+        del call
+
+    def joined_elsewhere(call):  # another thread joins; the owner's next call releases the team
+        joiner = threading.Thread(target=call.join)
+        joiner.start()
+        joiner.join(timeout=30)
+        assert not joiner.is_alive()
+        another_call_first(call)
+
+    def closed_first(call):  # close ends the call first; the team then works on the caller alone
+        team.close()
+        call.join()
+        assert team.threads == 1
+
+    for end in (join_twice, another_call_first, dropped, joined_elsewhere, closed_first):
+        y = sums()
+        end(_kernels.steer_start(*args(y, team)))
+        np.testing.assert_array_equal(y, ref, err_msg=end.__name__)
     assert sys.getrefcount(team) == refs  # every handle gave its reference back
     # no helpers: the call runs at once
-    y = np.empty(shape, np.complex64)
+    y = sums()
     _kernels.steer_start(*args(y, None)).join()
     np.testing.assert_array_equal(y, ref)
 

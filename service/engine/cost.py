@@ -197,11 +197,14 @@ def mvdr_update_ns(n_bins: int, sensors: int, n_power_bins: int, n_power: int, n
 def _mvdr_block_ns(rows: int, beams, n_fft: int, samplerate_hz: float, block_frames: int) -> float:
     """An MVDR beam set's weight updates, spread over the blocks of an update period (ns a block)."""
     settings = beams.adaptive
-    lo = min(b[0] for b in beams.bands_hz) if settings.band_hz is None else settings.band_hz[0]
-    hi = max(b[1] for b in beams.bands_hz) if settings.band_hz is None else settings.band_hz[1]
-    n_bins = int(math.ceil((hi - lo) * n_fft / samplerate_hz)) + 1
-    span = max(b[1] for b in beams.bands_hz) - min(b[0] for b in beams.bands_hz)
-    n_power_bins = min(n_bins, int(math.ceil(span * n_fft / samplerate_hz)) + 1)
+    bands = (min(b[0] for b in beams.bands_hz), max(b[1] for b in beams.bands_hz))  # the power bands' span
+    lo, hi = bands if settings.band_hz is None else settings.band_hz
+
+    def bins_in(width_hz):
+        return int(math.ceil(width_hz * n_fft / samplerate_hz)) + 1
+
+    n_bins = bins_in(hi - lo)
+    n_power_bins = min(n_bins, bins_in(bands[1] - bands[0]))
     update_frames = max(1, int(round(settings.update_s * samplerate_hz)))
     per_update = mvdr_update_ns(n_bins, rows, n_power_bins, len(beams.power_deg), len(beams.audio_deg),
                                 update_frames, block_frames)

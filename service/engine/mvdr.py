@@ -223,6 +223,17 @@ class AdaptiveBeamformer:
             self.fallback_bins += int(fb.sum())
 
 
+def wants_pair_rows(beams) -> bool:
+    """Whether ``beams`` may run on mirror-pair rows: delay-and-sum may (where the array allows),
+    MVDR beams need one history row per sensor."""
+    return beams.method != "mvdr"
+
+
+def base_engine(engine) -> Beamformer:
+    """The delay-and-sum :class:`Beamformer` under ``engine`` (itself, or what MVDR beams are formed over)."""
+    return engine.engine if isinstance(engine, AdaptiveBeamformer) else engine
+
+
 def engine_for(make, beams, current=None):
     """The engine for ``beams``: a :class:`Beamformer`, wrapped for ``method="mvdr"``.
 
@@ -234,9 +245,9 @@ def engine_for(make, beams, current=None):
     MVDR beams: :class:`ValueError` says so.
     """
     if current is None:
-        engine = make(beams.method != "mvdr")
+        engine = make(wants_pair_rows(beams))
         return AdaptiveBeamformer(engine, beams.adaptive) if beams.method == "mvdr" else engine
-    base = current.engine if isinstance(current, AdaptiveBeamformer) else current
+    base = base_engine(current)
     if beams.method != "mvdr":
         base.on_spectra = None
         return base

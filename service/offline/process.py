@@ -14,6 +14,7 @@ import numpy as np
 
 from beamtap import __version__, powertable, tracktable
 from beamtap.errors import UsageError
+from beamtap.outputs import remove_files
 from beamtap.session import json_default
 from beamtap.wavfile import WavReader, WavWriter
 
@@ -329,10 +330,8 @@ class Outputs:
         self._files = []
 
     def __enter__(self) -> "Outputs":
-        # A rerun into the same folder makes new files rather than truncating the old ones: ext4
-        # flushes a truncated file's data when it is written again and closed (auto_da_alloc),
-        # measured 2026-12-05 at 7 ms for a summary.json and more for audio.wav.
-        _remove_old(self.out, ["power.csv", "detections.csv", "tracks.csv"] + (["audio.wav"] if self.audio else []))
+        # A rerun into the same folder makes new files rather than truncating the old ones.
+        remove_files(self.out, ["power.csv", "detections.csv", "tracks.csv"] + (["audio.wav"] if self.audio else []))
         try:
             self.pf = open(self.power_csv, "w", encoding="utf-8")
             self._files.append(self.pf)
@@ -433,15 +432,9 @@ def write_summary(out: Path, plan: InputPlan, counts: dict, outputs: Outputs, bf
         **(extra or {}),
     }
     text = json.dumps(result, indent=2, default=json_default)
-    _remove_old(out, ["summary.json"])  # see Outputs.__enter__
+    remove_files(out, ["summary.json"])  # a new file (see Outputs.__enter__)
     (out / "summary.json").write_text(text)
     return result
-
-
-def _remove_old(folder: Path, names) -> None:
-    """Remove output files a previous run left in ``folder`` (missing ones are fine)."""
-    for name in names:
-        (folder / name).unlink(missing_ok=True)
 
 
 def _utc_mapper(anchors, fs: float):
